@@ -21,6 +21,7 @@ __all__ = [
     "ConfigError",
     "MeasureSettings",
     "Config",
+    "SECTION_CLASSES",
     "check_number",
     "check_choice",
     "load_config",
@@ -120,19 +121,57 @@ class MeasureSettings:
         return min(self.cap_latitude_deg, self.profile_min_latitude_deg)
 
 
+#: Section name -> "module:Class" of its settings dataclass.  Each stage defines
+#: its own frozen settings class beside its code; sections whose module is not
+#: importable yet are simply absent.
+SECTION_CLASSES: dict[str, str] = {
+    "measure": "pipeline.config:MeasureSettings",
+    "ingest": "pipeline.batch:IngestSettings",
+    "series": "pipeline.aggregator:SeriesSettings",
+    "reversals": "pipeline.reversal:ReversalSettings",
+    "cycles": "pipeline.cycles:CycleSettings",
+    "forecast": "pipeline.regression:ForecastSettings",
+    "report": "pipeline.report:ReportSettings",
+    "run": "pipeline.run:RunSettings",
+}
+
+
+def _section_classes() -> dict[str, type]:
+    import importlib
+
+    out = {}
+    for name, target in SECTION_CLASSES.items():
+        module, _, cls = target.partition(":")
+        try:
+            out[name] = getattr(importlib.import_module(module), cls)
+        except (ImportError, AttributeError):
+            continue
+    return out
+
+
 @dataclass(frozen=True)
 class Config:
-    """The whole configuration: one settings object per stage.
+    """The whole configuration: one validated settings object per section.
 
-    Later stages add their sections here; each section is a frozen dataclass
-    validated in its own ``__post_init__``.
+    ``config.measure``, ``config.series``, ... return the section's frozen
+    dataclass (its defaults when the file leaves the section out).
     """
 
-    measure: MeasureSettings = field(default_factory=MeasureSettings)
+    sections: dict = field(default_factory=dict)
     source_path: str | None = None
 
+    def __getattr__(self, name):
+        sections = object.__getattribute__(self, "sections")
+        if name in sections:
+            return sections[name]
+        classes = _section_classes()
+        if name in classes:
+            return classes[name]()
+        raise AttributeError(name)
 
-_SECTIONS: dict[str, type] = {"measure": MeasureSettings}
+    def to_dict(self) -> dict:
+        """Plain nested dict of every section (for provenance in stores and reports)."""
+        return {name: dataclasses.asdict(obj) for name, obj in sorted(self.sections.items())}
 
 
 def settings_from_mapping(cls: type, section: str, mapping: dict) -> Any:
@@ -174,13 +213,14 @@ def load_config(path: str | Path | None = None, **overrides: dict) -> Config:
             raise ConfigError(f"configuration file {path}: cannot read ({exc})") from None
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(f"configuration file {path}: invalid TOML ({exc})") from None
-    unknown = sorted(set(raw) - set(_SECTIONS))
+    classes = _section_classes()
+    unknown = sorted(set(raw) - set(classes))
     if unknown:
         raise ConfigError(
-            f"unknown section(s) {', '.join(unknown)}; valid sections are {', '.join(sorted(_SECTIONS))}")
+            f"unknown section(s) {', '.join(unknown)}; valid sections are {', '.join(sorted(classes))}")
     sections = {}
-    for name, cls in _SECTIONS.items():
+    for name, cls in classes.items():
         table = dict(raw.get(name, {}))
         table.update({k: v for k, v in overrides.get(name, {}).items() if v is not None})
         sections[name] = settings_from_mapping(cls, name, table)
-    return Config(**sections, source_path=None if path is None else str(path))
+    return Config(sections=sections, source_path=None if path is None else str(path))
