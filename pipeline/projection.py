@@ -183,6 +183,16 @@ def ray_directions(geometry: ImageGeometry, window: Window):
     """
     rows = np.arange(window.row0, window.row1, dtype=np.float64)[:, None]
     cols = np.arange(window.col0, window.col1, dtype=np.float64)[None, :]
+    return rays_at(geometry, rows, cols)
+
+
+def rays_at(geometry: ImageGeometry, rows, cols):
+    """:func:`ray_directions` at arbitrary (fractional, 0-based) pixel coordinates.
+
+    ``rows`` and ``cols`` broadcast against each other.
+    """
+    rows = np.asarray(rows, dtype=np.float64)
+    cols = np.asarray(cols, dtype=np.float64)
     if geometry.projection != "TAN":
         return _ray_directions_wcs(geometry, rows, cols)
     (c11, c12), (c21, c22) = np.deg2rad(np.asarray(geometry.cd_deg, dtype=float))
@@ -217,7 +227,8 @@ def _ray_directions_wcs(geometry, rows, cols):
     return u[0], u[1], u[2], solid
 
 
-def surface_points(geometry: ImageGeometry, observer: Observer, window: Window) -> SurfaceBlock:
+def surface_points(geometry: ImageGeometry, observer: Observer, window: Window,
+                   mu_floor: float = 0.0) -> SurfaceBlock:
     """Latitude, longitudes, mu and area for every pixel of a window.
 
     Parameters
@@ -225,17 +236,33 @@ def surface_points(geometry: ImageGeometry, observer: Observer, window: Window) 
     geometry : ImageGeometry
     observer : Observer
     window : Window
+    mu_floor : float
+        Pixels within a pixel of the limb get their exact footprint area
+        (see Notes) unless their centre's mu is below ``mu_floor`` (a caller
+        that drops ``mu < mu_min`` passes ``mu_min`` and skips the work).
 
     Returns
     -------
     SurfaceBlock
+        ``area_m2`` is the area of the sphere seen through each pixel; its sum
+        over all pixels is the visible area ``2 pi R^2 (1 - R/D)``.  Pixels whose
+        centre lies off the disk but whose footprint reaches it have an area
+        and NaN for the other quantities.
 
     Notes
     -----
     A ray ``P = O + d u`` from the observer ``O = (0, 0, D)`` meets the sphere
     ``|P| = R`` at ``d = D c - sqrt(R^2 - D^2 (1 - c^2))`` with ``c = -u_z``
     (the near root).  Then ``mu = (D P_z - R^2) / (R d)`` and the area is
-    ``dOmega d^2 / mu``.  The rotation to Stonyhurst coordinates for an
+    ``dOmega d^2 / mu``.  That midpoint rule fails at the limb, where
+    ``1/mu`` is singular, so pixels within one pixel of the limb are split into
+    8 x 8 sub-pixels whose area is integrated exactly in the radial direction:
+    a ray at angle ``rho`` from disk centre meets the sphere at angle ``t`` from
+    the sub-observer point with
+    ``cos t = (D sin^2 rho + cos rho sqrt(R^2 - D^2 sin^2 rho)) / R``, and the
+    sphere area per ring ``2 pi R^2 sin t dt`` integrates to
+    ``R^2 dphi [cos t(rho_1) - cos t(rho_2)]`` (``rho_2`` clipped at the limb).
+    The rotation to Stonyhurst coordinates for an
     observer at latitude B0 and longitude L follows Thompson (2006), eq. 11:
     ``Z = P_y cos B0 + P_z sin B0``,
     ``X = -P_x sin L - P_y sin B0 cos L + P_z cos B0 cos L``,
@@ -259,7 +286,47 @@ def surface_points(geometry: ImageGeometry, observer: Observer, window: Window) 
     lat = np.rad2deg(np.arcsin(np.clip(z_hgs / r, -1.0, 1.0)))
     lon = np.rad2deg(np.arctan2(y_hgs, x_hgs))
     carr = np.mod(lon + (observer.crln_deg - observer.hgln_deg), 360.0)
+    area = _refine_limb_area(geometry, observer, window, ux, uy, uz, np.where(on_disk, area, 0.0), mu,
+                             on_disk, mu_floor)
     return SurfaceBlock(window, on_disk, lat, lon, carr, mu, area)
+
+
+_LIMB_SUBPIXELS = 8
+
+
+def _cos_t(sin_rho, cos_rho, big_d, r):
+    """cos of the angle from the sub-observer point of the sphere point seen at angle rho."""
+    root = np.sqrt(np.maximum(r * r - big_d * big_d * sin_rho * sin_rho, 0.0))
+    return (big_d * sin_rho * sin_rho + cos_rho * root) / r
+
+
+def _refine_limb_area(geometry, observer, window, ux, uy, uz, area, mu, on_disk, mu_floor):
+    big_d, r = float(observer.distance_m), float(observer.rsun_m)
+    rho = np.arctan2(np.hypot(ux, uy), -uz)
+    rho_limb = np.arcsin(r / big_d)
+    h = np.sqrt(geometry.pixel_solid_angle_sr)
+    band = np.abs(rho - rho_limb) < 1.0 * h
+    if mu_floor > 0.0:
+        with np.errstate(invalid="ignore"):
+            band &= on_disk & (mu >= mu_floor)
+    if not band.any():
+        return area
+    jj, ii = np.nonzero(band)
+    k = _LIMB_SUBPIXELS
+    off = (np.arange(k) + 0.5) / k - 0.5
+    sub_r = (jj + window.row0)[:, None, None] + off[None, :, None]
+    sub_c = (ii + window.col0)[:, None, None] + off[None, None, :]
+    sx, sy, sz, s_solid = rays_at(geometry, sub_r, sub_c)
+    s_solid = s_solid / (k * k)
+    s_rho = np.arctan2(np.hypot(sx, sy), -sz)
+    a = h / k
+    rho1 = s_rho - a / 2.0
+    rho2 = np.minimum(s_rho + a / 2.0, rho_limb)
+    ring = _cos_t(np.sin(rho1), np.cos(rho1), big_d, r) - _cos_t(np.sin(rho2), np.cos(rho2), big_d, r)
+    sub_area = np.where(rho1 < rho_limb, r * r * s_solid / (a * np.sin(s_rho)) * ring, 0.0)
+    area = area.copy()
+    area[jj, ii] = sub_area.sum(axis=(1, 2))
+    return area
 
 
 def _clamped_latitude_deg(geometry, observer, window):
