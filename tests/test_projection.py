@@ -33,9 +33,10 @@ def _sunpy_reference(header, shape):
 
     m = sunpy.map.Map(np.zeros(shape, dtype=np.float32), header)
     coords = all_coordinates_from_map(m)
-    hgs = coords.transform_to(HeliographicStonyhurst(obstime=m.date))
-    hgc = coords.transform_to(HeliographicCarrington(observer=m.observer_coordinate, obstime=m.date))
-    obs = m.observer_coordinate.transform_to(HeliographicStonyhurst(obstime=m.date))
+    # the map's coordinate frame is defined at its reference date (sunpy >= 5)
+    hgs = coords.transform_to(HeliographicStonyhurst(obstime=m.reference_date))
+    hgc = coords.transform_to(HeliographicCarrington(observer=m.observer_coordinate, obstime=m.reference_date))
+    obs = m.observer_coordinate.transform_to(HeliographicStonyhurst(obstime=m.reference_date))
     p = hgs.cartesian.xyz.to_value(u.m)
     o = obs.cartesian.xyz.to_value(u.m)[:, None, None]
     normal = p / np.linalg.norm(p, axis=0)
