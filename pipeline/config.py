@@ -102,7 +102,7 @@ class MeasureSettings:
     cap_latitude_deg: float = 60.0
     mu_min: float = 0.1
     max_image_pixels: int = 16384 * 16384
-    profile_min_latitude_deg: float = 50.0
+    profile_min_latitude_deg: float = 55.0
     profile_bin_deg: float = 1.0
     hdu: int | None = None
 
@@ -112,6 +112,9 @@ class MeasureSettings:
         check_number("measure.max_image_pixels", self.max_image_pixels, lo=1, integer=True)
         check_number("measure.profile_min_latitude_deg", self.profile_min_latitude_deg, lo=0.0, hi=90.0)
         check_number("measure.profile_bin_deg", self.profile_bin_deg, lo=0.0, hi=90.0, lo_open=True)
+        if abs(90.0 / self.profile_bin_deg - round(90.0 / self.profile_bin_deg)) > 1e-9:
+            raise ConfigError(f"measure.profile_bin_deg: got {self.profile_bin_deg!r}; "
+                              "it must divide 90 degrees (e.g. 0.5, 1, 2, 5)")
         if self.hdu is not None:
             check_number("measure.hdu", self.hdu, lo=0, integer=True)
 

@@ -113,6 +113,15 @@ def _gap_bin(edges: np.ndarray, settings: MeasureSettings) -> int | None:
     return i if 0 <= i < edges.size - 1 else None
 
 
+def _bin_lookup(edges: np.ndarray, step: float):
+    """Map uniform bins of width ``step`` from -90 deg onto the profile's bins (-1: not a bin)."""
+    n = int(np.ceil(180.0 / step - 1e-9))
+    centres = -90.0 + step * (np.arange(n) + 0.5)
+    idx = np.searchsorted(edges, centres, side="right") - 1
+    idx[(idx < 0) | (idx >= edges.size - 1)] = -1
+    return idx, step
+
+
 @dataclass(frozen=True)
 class FrameRecord:
     """What one file gave: the ``polecast measure`` keys plus provenance and a profile.
@@ -211,23 +220,25 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
     cap = settings.cap_latitude_deg
     edges = profile_edges_deg(settings)
     nbins = edges.size - 1
+    lookup, step = _bin_lookup(edges, settings.profile_bin_deg)
     prof_w = np.zeros(nbins)
     prof_wb = np.zeros(nbins)
     north_b, north_a, south_b, south_a = [], [], [], []
+    lo = settings.read_latitude_deg
     for block in frame.blocks:
-        s = surface_points(hdr.geometry, obs, block.window)
+        s = surface_points(hdr.geometry, obs, block.window, mu_floor=settings.mu_min, longitudes=False)
         with np.errstate(invalid="ignore"):
-            good = s.on_disk & np.isfinite(block.data) & (s.mu >= settings.mu_min)
+            # mu is NaN off the disk, so the mu cut also drops off-disk pixels
+            good = (s.mu >= settings.mu_min) & (np.abs(s.latitude_deg) >= lo) & np.isfinite(block.data)
         lat = s.latitude_deg[good]
-        br = block.data[good].astype(np.float64) / s.mu[good]
         area = s.area_m2[good]
+        br = block.data[good] / s.mu[good]          # radial-field assumption Br = Blos / mu
         n_sel = lat >= cap
         s_sel = lat <= -cap
         north_b.append(br[n_sel]); north_a.append(area[n_sel])
         south_b.append(br[s_sel]); south_a.append(area[s_sel])
-        idx = np.searchsorted(edges, lat, side="right") - 1
-        idx[lat == edges[-1]] = nbins - 1
-        inb = (idx >= 0) & (idx < nbins)
+        idx = lookup[np.minimum(((lat + 90.0) / step).astype(np.intp), lookup.size - 1)]
+        inb = idx >= 0
         prof_w += np.bincount(idx[inb], weights=area[inb], minlength=nbins)
         prof_wb += np.bincount(idx[inb], weights=(area * br)[inb], minlength=nbins)
     gap = _gap_bin(edges, settings)
