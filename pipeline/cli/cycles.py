@@ -54,7 +54,8 @@ def _fmt(v, spec):
     return "-" if v is None else format(v, spec)
 
 
-def write_text(doc: dict, stream=sys.stdout) -> None:
+def write_text(doc: dict, stream=None) -> None:
+    stream = sys.stdout if stream is None else stream
     s = doc["smoothing"]
     stream.write(f"smoothing: {s['description']}; extrema prominence {doc['extrema_rule']['prominence']:.3g}\n")
     stream.write(f"{'minimum':>10} {'value':>8} {'maximum':>10} {'value':>8}\n")
