@@ -1,0 +1,49 @@
+"""``polecast export STORE --format csv|netcdf --out FILE``: the store's records as a table."""
+
+from __future__ import annotations
+
+import sys
+
+from pipeline.cli import EXIT_OK, EXIT_USAGE
+
+__all__ = ["add_parser", "run"]
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "export", help="write the measured frames of a store as CSV or netCDF",
+        description="Write every measured frame (status ok) of a store, one row per file content, in time "
+                    "order. CSV columns: the `polecast measure` keys first, then provenance (observer, "
+                    "digest, size, polecast version, configuration id, when measured). netCDF: the same "
+                    "values as variables on a `time` dimension with units and CF attributes, plus the "
+                    "latitude profile. Skipped files are not included; --skipped writes them instead (CSV "
+                    "only), with their reasons.")
+    p.add_argument("store", metavar="STORE", help="store file written by `polecast ingest`")
+    p.add_argument("--format", choices=("csv", "netcdf"), default="csv", help="output format (default csv)")
+    p.add_argument("--out", metavar="FILE", default="-", help="output file; '-' for stdout (CSV only; default)")
+    p.add_argument("--skipped", action="store_true", help="write the skipped files and their reasons instead")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    from pipeline.store import StoreError, export_csv, export_netcdf, open_store
+
+    if args.format == "netcdf" and (args.skipped or args.out == "-"):
+        why = "--skipped is CSV only" if args.skipped else "netCDF needs --out FILE"
+        print(f"polecast export: {why}; use --format csv or give --out FILE", file=sys.stderr)
+        return EXIT_USAGE
+    status = "skipped" if args.skipped else "ok"
+    try:
+        with open_store(args.store, "r") as store:
+            if args.format == "netcdf":
+                n = export_netcdf(store, args.out)
+            elif args.out == "-":
+                n = export_csv(store, sys.stdout, status)
+            else:
+                with open(args.out, "w", encoding="utf-8", newline="") as fh:
+                    n = export_csv(store, fh, status)
+    except (StoreError, OSError) as exc:
+        print(f"polecast export: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    print(f"export: {n} {'skipped files' if args.skipped else 'frames'} -> {args.out}", file=sys.stderr)
+    return EXIT_OK

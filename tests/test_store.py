@@ -1,0 +1,241 @@
+"""The ledger: digests, round trips, superseded contents, the writer lock, CSV and netCDF export."""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+
+import numpy as np
+import pytest
+
+from pipeline.config import MeasureSettings
+from pipeline.measure import JSON_KEYS, measure_file
+from pipeline.store import (EXTRA_COLUMNS, MeasuredFile, StoreError, StoreLockedError, config_id_of, export_csv,
+                            export_netcdf, file_digest, open_store, reason_group, records_dataset)
+from tests._ingest_archive import good_archive, hostile_files
+
+
+def _measured(path, settings=None):
+    st = os.stat(path)
+    rec = measure_file(path, settings or MeasureSettings())
+    return MeasuredFile(str(path), st.st_size, st.st_mtime_ns, file_digest(path), rec.to_dict())
+
+
+@pytest.fixture(scope="module")
+def frames(tmp_path_factory):
+    root = tmp_path_factory.mktemp("frames")
+    good = good_archive(root, 6)
+    bad = hostile_files(root / "bad")
+    return good, bad
+
+
+@pytest.fixture()
+def filled(tmp_path, frames):
+    good, bad = frames
+    results = [_measured(p) for p in list(good) + [bad["text.fits"], bad["notime.fits"]]]
+    path = tmp_path / "s.polecast"
+    with open_store(path, "a") as st:
+        cid = st.register_config(MeasureSettings())
+        st.add(results, cid)
+        st.commit()
+    return path, results
+
+
+def test_digest_is_blake2b_256_of_the_bytes(tmp_path):
+    # BLAKE2b (RFC 7693) through Python's reference hashlib, on the bytes read in one piece
+    p = tmp_path / "x.bin"
+    data = os.urandom(3 * 1024 * 1024 + 17)  # spans several read buffers
+    p.write_bytes(data)
+    assert file_digest(p) == hashlib.blake2b(data, digest_size=32).hexdigest()
+    # RFC 7693 Appendix A: BLAKE2b-512("abc") starts ba 80 a5 3f 98 1c 4d 0d (value from the RFC)
+    assert hashlib.blake2b(b"abc").hexdigest().startswith("ba80a53f981c4d0d")
+
+
+def test_records_round_trip_in_time_order(filled):
+    """Stored records equal what measure_file returned (identity round trip), ordered by time."""
+    path, results = filled
+    with open_store(path) as st:
+        got = list(st.iter_records())
+        skipped = list(st.iter_records("skipped"))
+    want = sorted((r for r in results if r.record["status"] == "ok"), key=lambda r: r.record["time"])
+    assert [g.to_dict() for g in got] == [r.record for r in want]
+    assert [g.time for g in got] == sorted(g.time for g in got)
+    assert {s.reason.split(" (")[0] for s in skipped} == {"not a FITS file", "no observation time"}
+
+
+def test_wal_journal_and_schema(filled):
+    path, _ = filled
+    # SQLite documentation, "Write-Ahead Logging": journal_mode reports 'wal' once set
+    con = sqlite3.connect(path)
+    assert con.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    assert {"meta", "configs", "files", "paths"} <= tables
+    row = con.execute("SELECT size, version, config_id FROM files LIMIT 1").fetchone()
+    con.close()
+    assert row[1] and row[2] == config_id_of(MeasureSettings())
+
+
+def test_summary_counts(filled):
+    path, results = filled
+    with open_store(path) as st:
+        s = st.summary()
+    assert (s["ok"], s["skipped"], s["current"], s["superseded"]) == (6, 2, 8, 0)
+    assert s["skip_reasons"] == {"not a FITS file": 1, "no observation time": 1}
+    assert s["first_time"] == min(r.record["time"] for r in results if r.record["time"])
+
+
+def test_changed_content_supersedes_old_record(tmp_path, frames):
+    """A path with new content: the new record is current, the old one stays in the ledger, not exported."""
+    good, _ = frames
+    a, b = _measured(good[0]), _measured(good[1])
+    b_at_a = MeasuredFile(a.path, b.size, b.mtime_ns, b.digest, dict(b.record, file=a.path))
+    with open_store(tmp_path / "s", "a") as st:
+        cid = st.register_config(MeasureSettings())
+        st.add([a], cid)
+        st.add([b_at_a], cid)
+        st.commit()
+        assert st.summary()["superseded"] == 1
+        assert [r.north_br_gauss for r in st.iter_records()] == [b.record["north_br_gauss"]]
+
+
+def test_rename_link_forgets_vanished_path(tmp_path, frames):
+    good, _ = frames
+    src = tmp_path / "a.fits"
+    src.write_bytes(good[0].read_bytes())
+    m = _measured(src)
+    with open_store(tmp_path / "s", "a") as st:
+        cid = st.register_config(MeasureSettings())
+        st.add([m], cid)
+        dst = tmp_path / "b.fits"
+        src.rename(dst)
+        st.link(str(dst), m.size, m.mtime_ns, m.digest)
+        st.commit()
+        assert [r.file for r in st.iter_records()] == [str(dst)]
+        assert st.digest_for_stat(str(src), m.size, m.mtime_ns) is None
+        assert st.digest_for_stat(str(dst), m.size, m.mtime_ns) == m.digest
+        assert st.digest_for_stat(str(dst), m.size + 1, m.mtime_ns) is None
+
+
+def test_second_writer_refused_readers_allowed(filled):
+    path, _ = filled
+    with open_store(path, "a"):
+        with pytest.raises(StoreLockedError, match=rf"in use by another ingest \(pid {os.getpid()} "):
+            open_store(path, "a")
+        with open_store(path, "r") as reader:  # WAL readers need no lock
+            assert reader.count() == 6
+    with open_store(path, "a"):  # released on close
+        pass
+
+
+def test_lock_of_a_killed_process_does_not_block(tmp_path):
+    """flock(2) locks go with the open file: the kernel drops them when the holder dies (Linux man page)."""
+    path = tmp_path / "s.polecast"
+    code = textwrap.dedent(f"""
+        import sys, time
+        from pipeline.store import open_store
+        st = open_store({str(path)!r}, "a")
+        print("locked", flush=True)
+        time.sleep(120)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout.readline().strip() == "locked"
+        with pytest.raises(StoreLockedError):
+            open_store(path, "a")
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=20)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    with open_store(path, "a") as st:
+        assert st.count() == 0
+
+
+def test_open_errors(tmp_path):
+    with pytest.raises(StoreError, match="no such file.*polecast ingest"):
+        open_store(tmp_path / "absent", "r")
+    with pytest.raises(ValueError, match="mode: got 'w'; valid modes are 'a', 'r'"):
+        open_store(tmp_path / "x", "w")
+    junk = tmp_path / "junk"
+    junk.write_bytes(b"not a database at all" * 100)
+    with pytest.raises(StoreError, match="not a polecast store"):
+        open_store(junk, "a")
+    with open_store(tmp_path / "ro", "a"):
+        pass
+    with open_store(tmp_path / "ro", "r") as st, pytest.raises(StoreError, match="read-only"):
+        st.commit()
+
+
+def test_reason_group():
+    # the grouping rule of the ingest summary: text before the first '(' or ':' (our own convention)
+    assert reason_group("truncated file: header declares 2880 bytes, file has 100") == "truncated file"
+    assert reason_group("not a FITS file (no SIMPLE card at the start)") == "not a FITS file"
+    assert reason_group(None) == "unknown"
+
+
+def test_csv_export_columns_and_values(filled):
+    """CSV read back with Python's csv module equals the records; the measure keys come first, in order."""
+    path, results = filled
+    buf = io.StringIO()
+    with open_store(path) as st:
+        n = export_csv(st, buf)
+    rows = list(csv.DictReader(io.StringIO(buf.getvalue())))
+    assert n == len(rows) == 6
+    assert list(rows[0])[: len(JSON_KEYS)] == list(JSON_KEYS)
+    assert list(rows[0])[len(JSON_KEYS):] == list(EXTRA_COLUMNS)
+    by_digest = {r.digest: r.record for r in results}
+    for row in rows:
+        rec = by_digest[row["digest"]]
+        assert row["time"] == rec["time"] and row["status"] == "ok"
+        assert float(row["north_br_gauss"]) == rec["north_br_gauss"]  # repr round trip is exact
+        assert int(row["south_pixels"]) == rec["south_pixels"]
+
+
+def test_netcdf_export_opens_with_xarray_and_has_cf_attributes(filled, tmp_path):
+    """The file opens with xarray; every variable has units (UDUNITS spelling, from memory) and long_name."""
+    import xarray as xr
+
+    path, results = filled
+    out = tmp_path / "frames.nc"
+    with open_store(path) as st:
+        assert export_netcdf(st, out) == 6
+    with xr.open_dataset(out) as ds:
+        ds.load()
+    assert ds.attrs["Conventions"].startswith("CF-")
+    # CF conventions 1.10 section 4.4: a time coordinate with standard_name and axis
+    assert ds["time"].attrs["standard_name"] == "time" and ds["time"].attrs["axis"] == "T"
+    assert "since 1970-01-01" in ds["time"].encoding["units"]
+    # CF section 7.1: a boundary variable takes its units from its coordinate, so it is left out here
+    numeric = [v for v in ds.data_vars if ds[v].dtype.kind in "fi" and v != "latitude_bnds"]
+    assert len(numeric) >= 12
+    for v in numeric:
+        assert ds[v].attrs.get("units"), v
+        assert ds[v].attrs.get("long_name"), v
+    assert ds["north_br_gauss"].attrs["units"] == "gauss"
+    assert ds["north_flux_mx"].attrs["units"] == "maxwell"
+    # CF section 7.1: the bounds variable named by the coordinate's 'bounds' attribute
+    assert ds["latitude"].attrs["bounds"] == "latitude_bnds"
+    want = sorted((r.record for r in results if r.record["status"] == "ok"), key=lambda d: d["time"])
+    edges = np.asarray(want[0]["profile_edges_deg"])
+    np.testing.assert_array_equal(ds["latitude_bnds"].values, np.stack([edges[:-1], edges[1:]], axis=1))
+    np.testing.assert_array_equal(ds["north_br_gauss"].values, [d["north_br_gauss"] for d in want])
+    np.testing.assert_array_equal(ds["time"].values, np.array([d["time"].rstrip("Z") for d in want],
+                                                              dtype="datetime64[ns]"))
+    prof = np.array([[np.nan if v is None else v for v in d["profile_br_gauss"]] for d in want])
+    np.testing.assert_array_equal(ds["profile_br_gauss"].values, prof)
+
+
+def test_records_dataset_of_empty_store(tmp_path):
+    with open_store(tmp_path / "s", "a"):
+        pass
+    with open_store(tmp_path / "s") as st:
+        ds = records_dataset(st)
+    assert ds.sizes["time"] == 0 and "north_br_gauss" in ds
