@@ -97,3 +97,83 @@ def test_history_appends_without_rewriting(tmp_path, capsys):
     lines = [json.loads(s) for s in hist.read_text().splitlines()]
     assert [e["data_date"] for e in lines] == ["2034-01-31", "2034-02-28"]
     assert [e["precursor"] for e in lines] == [1.2, 1.3] and lines[0]["method"] == "ols"
+
+
+def _store_with_dipole(tmp_path, t_end):
+    """A store of Tessaly frame records with dipole 6 sin(2 pi (t - 2033)/22) G (invented demo data)."""
+    store_mod = pytest.importorskip("pipeline.store")
+    pytest.importorskip("pipeline.aggregator")
+    from pipeline.config import MeasureSettings
+    from pipeline.measure import FrameRecord
+    from pipeline.timeutil import from_decimal_year, iso_time
+
+    records = []
+    for k, t in enumerate(np.arange(2030.0, t_end, 0.04)):
+        d = 6.0 * np.sin(2 * np.pi * (t - 2033.0) / 22.0)
+        records.append(FrameRecord(file=f"kvm_{k:04d}.fits", status="ok", time=iso_time(from_decimal_year(t)),
+                                   b0_deg=0.0, north_br_gauss=d, south_br_gauss=-d, north_br_error_gauss=0.2,
+                                   south_br_error_gauss=0.2, north_coverage=0.5, south_coverage=0.5,
+                                   north_pixels=100, south_pixels=100))
+    path = tmp_path / "kvm.polecast"
+    with store_mod.open_store(path, "a") as store:
+        cid = store.register_config(MeasureSettings())
+        store.add([store_mod.MeasuredFile(r.file, 1, 1, f"{i:064x}", r.to_dict()) for i, r in enumerate(records)],
+                  cid)
+        store.commit()
+    config = tmp_path / "polecast.toml"
+    config.write_text('[series]\nb0_method = "visible"\n')
+    return path, config
+
+
+def _sunspots(path, t_end):
+    # Tessaly's invented monthly sunspot numbers: minima at 2027.5 and 2038.5, ISO months
+    months = np.arange(np.datetime64("2025-01"), np.datetime64(f"{int(t_end)}-{int((t_end % 1) * 12) + 1:02d}"))
+    t = 2025.0 + (np.arange(months.size) + 0.5) / 12
+    ssn = 5 + 150 * np.sin(np.pi * (t - 2027.5) / 11.0) ** 2
+    path.write_text("month,ssn\n" + "".join(f"{m},{v:.1f}\n" for m, v in zip(months, ssn)))
+
+
+def test_store_route_at_the_minimum(tmp_path, capsys):
+    store, config = _store_with_dipole(tmp_path, 2042.0)
+    ssn = tmp_path / "ssn.csv"
+    _sunspots(ssn, 2041.0)
+    cal = tmp_path / "cal.csv"
+    _write_table(cal)
+    hist = tmp_path / "h.jsonl"
+    assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+                 "--config", str(config), "--history", str(hist)]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    detail = doc["precursor_detail"]
+    assert detail["route"] == "minimum" and detail["minimum_time"] == pytest.approx(2038.5, abs=0.1)
+    # the dipole peaks (6 G) at the minimum: mean |B| over +-0.5 yr of 6 sin(...) is 5.99 G (closed form)
+    assert doc["precursor"] == pytest.approx(5.99, abs=0.05)
+    # the final reversal of the dipole, 2033.0 by construction (interpolated zero crossing)
+    assert detail["reversal_time"] == pytest.approx(2033.0, abs=0.1)
+    assert json.loads(hist.read_text())["precursor_source"] == "store"
+    assert json.loads(hist.read_text())["data_date"].startswith("2041-")
+
+
+def test_store_route_after_the_reversal(tmp_path, capsys):
+    store, config = _store_with_dipole(tmp_path, 2036.5)
+    ssn = tmp_path / "ssn.csv"
+    _sunspots(ssn, 2036.5)
+    cal = tmp_path / "cal.csv"
+    _write_table(cal)
+    assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+                 "--config", str(config)]) == 0
+    cap = capsys.readouterr()
+    doc = json.loads(cap.out)
+    detail = doc["precursor_detail"]
+    assert detail["route"] == "after_reversal" and detail["minimum_time"] == pytest.approx(2027.5, abs=0.1)
+    # newest window ends at the newest rotation; lag about 3 yr < 4 yr: Kumar et al. (2021) caution
+    assert detail["lag_years"] == pytest.approx(3.0, abs=0.1)
+    assert any("Kumar et al. 2021" in w for w in doc["warnings"]) and "Kumar" in cap.err
+    t = detail["time"]
+    truth = np.mean(np.abs(6.0 * np.sin(2 * np.pi * (np.linspace(t - 0.5, t + 0.5, 2001) - 2033.0) / 22.0)))
+    assert doc["precursor"] == pytest.approx(truth, rel=0.02)  # closed form of the constructed dipole
+    assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+                 "--config", str(config), "--lag-years", "2.0"]) == 0
+    assert json.loads(capsys.readouterr().out)["precursor_detail"]["lag_years"] == 2.0
+    assert main(["forecast", "--calibration", str(cal), "--store", str(tmp_path / "absent.polecast"),
+                 "--sunspots", str(ssn)]) == 2
+    assert "cannot take the precursor" in capsys.readouterr().err

@@ -64,7 +64,7 @@ def _final_reversal_time(result):
     return float(final["time"] if isinstance(final, dict) else getattr(final, "time"))
 
 
-def precursor_from_store(store_path, sunspots_path, settings, series_settings=None) -> dict:
+def precursor_from_store(store_path, sunspots_path, settings, config=None) -> dict:
     """The precursor of the coming cycle from a store of measured frames.
 
     At the last cycle minimum of the sunspot series when the polar series
@@ -72,33 +72,45 @@ def precursor_from_store(store_path, sunspots_path, settings, series_settings=No
     after that minimum (the next minimum still ahead), at ``settings.lag_years``
     after the reversal, or from the newest full window.
 
+    Parameters
+    ----------
+    store_path, sunspots_path : str
+        The store (``pipeline.store``) and the monthly sunspot CSV.
+    settings : pipeline.regression.ForecastSettings
+        ``precursor_kind``, ``window_years``, ``lag_years``.
+    config : pipeline.config.Config, optional
+        Its ``series``, ``cycles`` and ``reversals`` sections are used.
+
     Returns
     -------
     dict
         ``precursor_gauss``, ``precursor_error_gauss``, ``route`` (``minimum`` or
-        ``after_reversal``), ``data_date`` (ISO date of the newest rotation),
-        ``notes`` and the window details.
+        ``after_reversal``), ``minimum_time``, ``reversal_time``, ``data_date``
+        (ISO date of the newest rotation), ``notes`` and the window details.
 
     Raises
     ------
     ValueError
         When the store, the sunspot file or the coverage cannot give a precursor.
     """
+    import dataclasses
+
     import numpy as np
 
-    from pipeline.aggregator import polar_series  # written in parallel (issue 5); imported lazily
+    from pipeline.aggregator import polar_series  # issue 5; imported lazily
     from pipeline.cycles import cycle_landmarks, read_monthly_csv
     from pipeline.precursor import latest_precursor, precursor_after_reversal, precursor_at, rotation_magnitude
-    from pipeline.store import open_store
+    from pipeline.store import open_store  # issue 4; imported lazily
     from pipeline.timeutil import decimal_year, iso_date
 
+    sections = getattr(config, "sections", {}) if config is not None else {}
     with open_store(store_path) as store:
         records = list(store.iter_records())
     if not records:
         raise ValueError(f"store {store_path}: no measured frame; ingest magnetograms first")
-    series = polar_series(records, series_settings) if series_settings is not None else polar_series(records)
+    series = polar_series(records, sections.get("series"))
     months = read_monthly_csv(sunspots_path)
-    cycles = cycle_landmarks(months.time_decimal_year, months.values)
+    cycles = cycle_landmarks(months.time_decimal_year, months.values, sections.get("cycles"))
     if not cycles:
         raise ValueError(f"sunspot file {sunspots_path}: no cycle minimum found; give a longer monthly series")
     minimum = cycles[-1]["minimum_time"]
@@ -108,15 +120,16 @@ def precursor_from_store(store_path, sunspots_path, settings, series_settings=No
     if not measured.any():
         raise ValueError(f"store {store_path}: the polar series has no measured rotation")
     newest = float(time[measured].max())
-    reversal = None
-    try:
-        from pipeline.reversal import find_reversals  # issue 5; imported lazily
+    from pipeline.reversal import ReversalSettings, find_reversals  # issue 5; imported lazily
 
-        dip = series["dipole_br_smooth_gauss"] if "dipole_br_smooth_gauss" in series else series["dipole_br_rotation_gauss"]
-        reversal = _final_reversal_time(find_reversals(np.atleast_1d(decimal_year(series["rotation_time"].values)),
-                                                       np.asarray(dip.values, dtype=np.float64)))
-    except ImportError:
-        reversal = None
+    rev_settings = sections.get("reversals") or ReversalSettings()
+    # only the epoch is needed here: no bootstrap
+    rev_settings = dataclasses.replace(rev_settings, n_bootstrap=0)
+    smoother = sections["series"].smoother if "series" in sections else None
+    result = find_reversals(np.atleast_1d(decimal_year(series["rotation_time"].values)),
+                            np.asarray(series["dipole_br_rotation_gauss"].values, dtype=np.float64),
+                            rev_settings, smoother)
+    reversal = _final_reversal_time(result)
     if reversal is not None and reversal > minimum:
         if settings.lag_years is None:
             item = latest_precursor(series, reversal, kind=kind, window_years=w)
@@ -129,8 +142,7 @@ def precursor_from_store(store_path, sunspots_path, settings, series_settings=No
                              f"last cycle minimum {minimum:.3f} is complete; wait for more data")
         item = precursor_at(series, minimum, kind=kind, window_years=w)
         item.update(route="minimum", notes=[])
-    item.update(minimum_time=minimum, reversal_time=reversal,
-                data_date=iso_date(float(newest)), kind=kind)
+    item.update(minimum_time=minimum, reversal_time=reversal, data_date=iso_date(float(newest)), kind=kind)
     return item
 
 
@@ -169,9 +181,8 @@ def run(args) -> int:
                   file=sys.stderr)
             return EXIT_USAGE
         try:
-            item = precursor_from_store(args.store, args.sunspots, settings, config.series
-                                        if "series" in config.sections else None)
-        except (ValueError, OSError, ImportError) as exc:
+            item = precursor_from_store(args.store, args.sunspots, settings, config)
+        except (ValueError, OSError, ImportError, RuntimeError) as exc:  # StoreError is a RuntimeError
             print(f"{prog}: cannot take the precursor from {args.store}: {exc}", file=sys.stderr)
             return EXIT_USAGE
         precursor, precursor_error = item["precursor_gauss"], item["precursor_error_gauss"]
