@@ -120,7 +120,8 @@ def frame_header(geometry: ImageGeometry, observer: Observer, date_obs: str, *, 
 
 
 def write_magnetogram(path, blos_gauss: np.ndarray, header, *, compression: str | None = "RICE_1",
-                      bscale: float = 0.1, quantize_level: float | None = None) -> None:
+                      bscale: float = 0.1, quantize_level: float | None = None,
+                      blank: int = BLANK_INT32) -> None:
     """Write a line-of-sight image as scaled int32 with BLANK for NaN.
 
     Parameters
@@ -134,12 +135,18 @@ def write_magnetogram(path, blos_gauss: np.ndarray, header, *, compression: str 
         plain primary-HDU image.
     bscale : float
         Gauss per integer step (quantisation of the stored values).
+    blank : int
+        Integer written for NaN (BLANK).  The default is the int32 minimum; a
+        value just outside the data range (e.g. -32768) compresses far better
+        with RICE, whose blocks that straddle a huge jump are stored raw.  Data
+        are clipped to ``+-(|blank| - 1)`` when ``blank`` is not the int32 minimum.
     """
     from astropy.io import fits
 
     ints = np.where(np.isfinite(blos_gauss), np.round(np.nan_to_num(blos_gauss) / bscale), 0.0)
-    ints = np.clip(ints, -2147483647, 2147483647).astype(np.int32)
-    ints[~np.isfinite(blos_gauss)] = BLANK_INT32
+    lim = 2147483647 if blank == BLANK_INT32 else abs(int(blank)) - 1
+    ints = np.clip(ints, -lim, lim).astype(np.int32)
+    ints[~np.isfinite(blos_gauss)] = blank
     h = header.copy()
     if compression is None:
         hdu = fits.PrimaryHDU(data=ints, header=h, do_not_scale_image_data=True)
@@ -148,6 +155,130 @@ def write_magnetogram(path, blos_gauss: np.ndarray, header, *, compression: str 
                                 do_not_scale_image_data=True)
     hdu.header["BSCALE"] = bscale
     hdu.header["BZERO"] = 0.0
-    hdu.header["BLANK"] = BLANK_INT32
+    hdu.header["BLANK"] = int(blank)
     hdus = [hdu] if compression is None else [fits.PrimaryHDU(), hdu]
     fits.HDUList(hdus).writeto(path, overwrite=True, checksum=False)
+
+
+# --- additions for the synthetic archive (issue 3) -------------------------------------------------
+
+__all__ += ["earth_observers", "pole_pixels", "disk_centre_pixel", "world_direction_to_pixel",
+            "RSUN_REF_M", "NOISE_METHODS", "instrument_noise"]
+
+RSUN_REF_M = 6.957e8  # IAU 2015 Resolution B3 nominal solar radius (sunpy's RSUN_REF)
+
+
+def earth_observers(times, rsun_m: float = RSUN_REF_M) -> list:
+    """The Earth as observer at each time, from sunpy's ephemeris.
+
+    Parameters
+    ----------
+    times : array_like of datetime64 or ISO strings (UTC)
+    rsun_m : float
+        Radius of the sphere written as RSUN_REF, metres.
+
+    Returns
+    -------
+    list of :class:`pipeline.projection.Observer`
+        Distance and Stonyhurst latitude/longitude from
+        ``sunpy.coordinates.get_earth``; Carrington longitude ``L0`` from
+        ``sunpy.coordinates.sun.L0`` (apparent, with light-travel time).
+    """
+    import warnings
+
+    from astropy.time import Time
+    from sunpy.coordinates import get_earth, sun
+
+    from pipeline.timeutil import to_datetime64
+
+    iso = np.datetime_as_string(np.atleast_1d(to_datetime64(times)).astype("datetime64[ms]"), unit="ms")
+    with warnings.catch_warnings():  # erfa "dubious year" for dates past the leap-second table
+        warnings.simplefilter("ignore")
+        t = Time(list(iso), scale="utc")
+        earth = get_earth(t)
+        l0 = sun.L0(t)
+    dist = np.atleast_1d(earth.radius.to_value("m"))
+    lat = np.atleast_1d(earth.lat.to_value("deg"))
+    lon = np.atleast_1d(earth.lon.to_value("deg"))
+    crln = np.atleast_1d(l0.to_value("deg"))
+    return [Observer(float(d), float(b), float(ln), float(c), float(rsun_m), "ephemeris")
+            for d, b, ln, c in zip(dist, lat, lon, crln)]
+
+
+def world_direction_to_pixel(geometry: ImageGeometry, u) -> tuple:
+    """0-based pixel ``(x, y)`` of a line-of-sight direction, for the TAN geometries of :func:`geometry_for`.
+
+    Parameters
+    ----------
+    geometry : ImageGeometry
+        With ``crval_deg == (0, 0)`` (what :func:`geometry_for` writes).
+    u : array_like, shape (3,)
+        Direction from the observer, frame x = solar west, y = solar north,
+        z = from Sun centre toward the observer.
+
+    Notes
+    -----
+    With the reference point at disk centre the gnomonic intermediate
+    coordinates are ``(x, y) = (u_x, u_y) / (-u_z)`` radians (Calabretta &
+    Greisen 2002, A&A 395, 1077, eq. 54 inverted); pixel = CRPIX + CD^-1 (x, y).
+    """
+    if tuple(geometry.crval_deg) != (0.0, 0.0) or geometry.projection != "TAN":
+        raise ValueError("geometry: only TAN images with CRVAL = (0, 0) (as geometry_for writes) are supported")
+    ux, uy, uz = (float(v) for v in u)
+    xy_deg = np.rad2deg(np.array([ux / -uz, uy / -uz]))
+    dx, dy = np.linalg.solve(np.asarray(geometry.cd_deg, dtype=float), xy_deg)
+    return float(geometry.crpix[0] + dx), float(geometry.crpix[1] + dy)
+
+
+def disk_centre_pixel(geometry: ImageGeometry) -> tuple:
+    """0-based pixel of the Sun's centre (the direction straight at it)."""
+    return world_direction_to_pixel(geometry, (0.0, 0.0, -1.0))
+
+
+def pole_pixels(geometry: ImageGeometry, observer: Observer) -> tuple:
+    """0-based pixels ``((x_n, y_n), (x_s, y_s))`` of the north and south rotation poles.
+
+    Notes
+    -----
+    The poles are at heliocentric-Cartesian ``(0, +-R cos B0, +-R sin B0)``
+    (Thompson 2006, A&A 449, 791, eq. 11 inverted at latitude +-90 deg); the
+    ray from the observer at ``(0, 0, D)`` is ``P - O``.
+    """
+    r, big_d = observer.rsun_m, observer.distance_m
+    b0 = np.deg2rad(observer.b0_deg)
+    out = []
+    for s in (1.0, -1.0):
+        v = np.array([0.0, s * r * np.cos(b0), s * r * np.sin(b0) - big_d])
+        out.append(world_direction_to_pixel(geometry, v / np.linalg.norm(v)))
+    return tuple(out)
+
+
+def _gaussian_noise(shape, sigma_gauss, rng):
+    return rng.normal(0.0, sigma_gauss, shape)
+
+
+def _no_noise(shape, sigma_gauss, rng):
+    return np.zeros(shape)
+
+
+#: instrument noise models by name: ``f(shape, sigma_gauss, rng) -> ndarray`` (gauss)
+NOISE_METHODS = {"gaussian": _gaussian_noise, "none": _no_noise}
+
+
+def instrument_noise(shape, sigma_gauss: float, rng, method: str = "gaussian") -> np.ndarray:
+    """Photon/readout noise of the line-of-sight signal (white, gauss).
+
+    Parameters
+    ----------
+    shape : tuple
+    sigma_gauss : float
+        Standard deviation per pixel, gauss.
+    rng : numpy.random.Generator
+    method : str
+        One of :data:`NOISE_METHODS`.
+    """
+    try:
+        f = NOISE_METHODS[method]
+    except KeyError:
+        raise ValueError(f"method: got {method!r}; valid choices are {', '.join(sorted(NOISE_METHODS))}") from None
+    return f(shape, float(sigma_gauss), rng)
