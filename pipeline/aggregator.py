@@ -399,7 +399,7 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
 
 
 def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
-                   min_coverage: float = 0.5) -> dict:
+                   min_coverage: float = 0.2) -> dict:
     """Whole-cap mean Br above each band boundary, per rotation, from the diagram.
 
     Parameters
@@ -410,7 +410,11 @@ def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
         Cap boundaries ``L`` (|latitude|, degrees).
     min_coverage : float
         A rotation's cap mean is NaN when the bins with data cover less than
-        this fraction of the cap's area on the sphere.
+        this fraction of the cap's area on the sphere (default 0.2: small
+        images leave many 1-deg bins near the limb without a pixel, and the far
+        pole's highest bands are hidden half the year; on 96-px closed-loop
+        frames 0.5 left the 70-85 deg bands with too few rotations to place a
+        reversal).
 
     Returns
     -------

@@ -34,12 +34,11 @@ def earth_observer(t64) -> Observer:
     return Observer(distance_m=d, b0_deg=b0, hgln_deg=0.0, crln_deg=l0, rsun_m=RSUN_M, source="header")
 
 
-def render_and_measure(tmp_path, years, br_of_lat_time, *, size=112, noise_gauss=0.0, seed=0,
-                       settings: MeasureSettings | None = None):
-    """Frames at decimal ``years`` of ``br_of_lat_time(lat_deg, year) -> Br`` (gauss); their records."""
+def render_frames(directory, years, br_of_lat_time, *, size=112, noise_gauss=0.0, seed=0):
+    """Write frames at decimal ``years`` of ``br_of_lat_time(lat_deg, year) -> Br`` (gauss); their paths."""
     rng = np.random.default_rng(seed)
     setup = ObservingSetup(size=size, radius_fraction=0.9)
-    records = []
+    paths = []
     for k, y in enumerate(years):
         t64 = from_decimal_year(float(y))
         obs = earth_observer(t64)
@@ -47,8 +46,15 @@ def render_and_measure(tmp_path, years, br_of_lat_time, *, size=112, noise_gauss
         img = render_los(lambda lat, lon: br_of_lat_time(lat, float(y)), geom, obs)
         if noise_gauss:
             img = img + rng.normal(0.0, noise_gauss, img.shape)
-        path = tmp_path / f"kvm_{k:04d}.fits"
+        path = directory / f"kvm_{k:04d}.fits"
         write_magnetogram(path, img, frame_header(geom, obs, iso_time(t64).rstrip("Z")), compression=None,
                           bscale=0.01)
-        records.append(measure_file(path, settings))
-    return records
+        paths.append(path)
+    return paths
+
+
+def render_and_measure(tmp_path, years, br_of_lat_time, *, size=112, noise_gauss=0.0, seed=0,
+                       settings: MeasureSettings | None = None):
+    """:func:`render_frames`, then :func:`pipeline.measure.measure_file` of each; the records."""
+    paths = render_frames(tmp_path, years, br_of_lat_time, size=size, noise_gauss=noise_gauss, seed=seed)
+    return [measure_file(p, settings) for p in paths]

@@ -1,0 +1,159 @@
+"""``polecast reversals STORE | --series CSV [--format json|text]``: polarity-reversal epochs."""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import sys
+
+import numpy as np
+
+from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from pipeline.cli.series import add_series_options, load_records, series_overrides
+from pipeline.config import load_config
+
+__all__ = ["add_parser", "run", "read_series_csv", "format_text", "SERIES_CSV_COLUMNS"]
+
+#: Required columns of ``--series CSV``.
+SERIES_CSV_COLUMNS = ("time", "north_br_gauss", "south_br_gauss")
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "reversals", help="polarity-reversal epochs of the polar fields, with intervals",
+        description="Every persistent sign change of the smoothed north, south and axial-dipole polar "
+                    "fields, the final one, and a bootstrap interval for each; from a store (with "
+                    "per-latitude-band epochs for cap boundaries 55..85 deg) or from a CSV table with "
+                    "columns time (ISO date or decimal year), north_br_gauss, south_br_gauss. Exit 0 ok, "
+                    "1 some rows were unreadable (each named on stderr), 2 usage error.")
+    p.add_argument("store", metavar="STORE", nargs="?", help="store file written by `polecast ingest`")
+    p.add_argument("--series", metavar="CSV", help="read a series table instead of a store")
+    p.add_argument("--format", choices=("json", "text"), default="json", help="output format (default json)")
+    p.add_argument("--persistence-years", type=float, metavar="Y",
+                   help="a new sign must hold this long to count (default 0.4)")
+    p.add_argument("--confidence", type=float, metavar="P", help="interval coverage (default 0.9)")
+    p.add_argument("--n-bootstrap", type=int, metavar="N", help="bootstrap replicates (default 300)")
+    add_series_options(p)
+    p.set_defaults(func=run)
+
+
+def _parse_time(text: str):
+    try:
+        return float(text)
+    except ValueError:
+        pass
+    from pipeline.timeutil import decimal_year, to_datetime64
+
+    return float(decimal_year(to_datetime64(text)))
+
+
+def _parse_value(text: str) -> float:
+    text = text.strip()
+    if text == "" or text.lower() in ("nan", "na", "null", "none"):
+        return math.nan
+    return float(text)
+
+
+def read_series_csv(path):
+    """Read ``time, north_br_gauss, south_br_gauss`` rows.
+
+    Returns
+    -------
+    time_years, north_gauss, south_gauss : ndarray
+        Decimal years and gauss (NaN for empty cells).
+    problems : list of str
+        One line per unreadable row (the row is left out, the rest carry on).
+
+    Raises
+    ------
+    ValueError
+        When a required column is missing (names the columns).
+    """
+    t, n, s, problems = [], [], [], []
+    with open(path, newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        cols = [c.strip() for c in (reader.fieldnames or [])]
+        missing = [c for c in SERIES_CSV_COLUMNS if c not in cols]
+        if missing:
+            raise ValueError(f"{path}: missing column(s) {', '.join(missing)}; the table needs columns "
+                             f"{', '.join(SERIES_CSV_COLUMNS)} (time as ISO date or decimal year)")
+        for line, row in enumerate(reader, start=2):
+            row = {(k or "").strip(): (v or "") for k, v in row.items()}
+            try:
+                ty = _parse_time(row["time"].strip())
+                nv, sv = _parse_value(row["north_br_gauss"]), _parse_value(row["south_br_gauss"])
+            except (ValueError, TypeError) as exc:
+                problems.append(f"{path} line {line}: unreadable row ({exc}); left out")
+                continue
+            if not math.isfinite(ty):
+                problems.append(f"{path} line {line}: time {row['time']!r} is not finite; left out")
+                continue
+            t.append(ty); n.append(nv); s.append(sv)
+    return np.array(t), np.array(n), np.array(s), problems
+
+
+def _text_block(name, res: dict, indent="") -> list[str]:
+    lines = [f"{indent}{name}: {len(res['crossings'])} reversal(s)"]
+    for c in res["crossings"]:
+        lines.append(f"{indent}  {c['time_iso']}  {c['time']:.3f}  [{c['low']:.3f}, {c['high']:.3f}]  "
+                     f"sign after {c['sign_after']:+d}")
+    fin = res["final"]
+    lines.append(f"{indent}  final: {fin['time_iso'] if fin else 'none'}")
+    return lines
+
+
+def format_text(out: dict) -> str:
+    """Human-readable summary of the reversal JSON object."""
+    lines = []
+    for name in ("north", "south", "dipole"):
+        lines += _text_block(name, out[name])
+    for pole, bands in out.get("bands", {}).items():
+        lines.append(f"{pole} by cap boundary:")
+        for boundary, res in bands.items():
+            lines += _text_block(f"|lat| >= {boundary} deg", res, indent="  ")
+    return "\n".join(lines) + "\n"
+
+
+def run(args) -> int:
+    from pipeline.reversal import band_reversals, polar_reversals, series_reversals
+
+    prog = "polecast reversals"
+    if (args.store is None) == (args.series is None):
+        print(f"{prog}: give a STORE or --series CSV (one of them)", file=sys.stderr)
+        return EXIT_USAGE
+    config = load_config(args.config, series=series_overrides(args),
+                         reversals={"min_persistence_years": args.persistence_years,
+                                    "confidence": args.confidence, "n_bootstrap": args.n_bootstrap})
+    smoother = config.series.smoother
+    problems: list[str] = []
+    if args.series is not None:
+        try:
+            t, north, south, problems = read_series_csv(args.series)
+        except (OSError, UnicodeDecodeError, ValueError, csv.Error) as exc:
+            print(f"{prog}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+        res = polar_reversals(t, north, south, config.reversals, smoother)
+        out = {k: v.to_dict() for k, v in res.items()}
+    else:
+        from pipeline.aggregator import band_cap_means, latitude_time_diagram, polar_series
+
+        records, err = load_records(args.store, "reversals")
+        if records is None:
+            print(f"{prog}: {err}", file=sys.stderr)
+            return EXIT_USAGE
+        ds = polar_series(records, config.series)
+        out = {k: v.to_dict() for k, v in series_reversals(ds, config.reversals, smoother).items()}
+        bands = band_reversals(band_cap_means(latitude_time_diagram(records, config.series)),
+                               config.reversals, smoother)
+        out["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
+        if not records:
+            problems.append(f"{args.store}: the store has no measured frames")
+    if args.format == "json":
+        json.dump(out, sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(format_text(out))
+    for p in problems:
+        print(f"{prog}: {p}", file=sys.stderr)
+    return EXIT_SKIPPED if problems else EXIT_OK
