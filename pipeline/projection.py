@@ -228,7 +228,7 @@ def _ray_directions_wcs(geometry, rows, cols):
 
 
 def surface_points(geometry: ImageGeometry, observer: Observer, window: Window,
-                   mu_floor: float = 0.0) -> SurfaceBlock:
+                   mu_floor: float = 0.0, longitudes: bool = True) -> SurfaceBlock:
     """Latitude, longitudes, mu and area for every pixel of a window.
 
     Parameters
@@ -240,6 +240,9 @@ def surface_points(geometry: ImageGeometry, observer: Observer, window: Window,
         Pixels within a pixel of the limb get their exact footprint area
         (see Notes) unless their centre's mu is below ``mu_floor`` (a caller
         that drops ``mu < mu_min`` passes ``mu_min`` and skips the work).
+    longitudes : bool
+        False skips the Stonyhurst and Carrington longitudes (returned as None),
+        which a cap measurement does not need.
 
     Returns
     -------
@@ -281,11 +284,13 @@ def surface_points(geometry: ImageGeometry, observer: Observer, window: Window,
     b0, lobs = np.deg2rad(observer.b0_deg), np.deg2rad(observer.hgln_deg)
     sb, cb, sl, cl = np.sin(b0), np.cos(b0), np.sin(lobs), np.cos(lobs)
     z_hgs = py * cb + pz * sb
-    x_hgs = -px * sl - py * sb * cl + pz * cb * cl
-    y_hgs = px * cl - py * sb * sl + pz * cb * sl
     lat = np.rad2deg(np.arcsin(np.clip(z_hgs / r, -1.0, 1.0)))
-    lon = np.rad2deg(np.arctan2(y_hgs, x_hgs))
-    carr = np.mod(lon + (observer.crln_deg - observer.hgln_deg), 360.0)
+    lon = carr = None
+    if longitudes:
+        x_hgs = -px * sl - py * sb * cl + pz * cb * cl
+        y_hgs = px * cl - py * sb * sl + pz * cb * sl
+        lon = np.rad2deg(np.arctan2(y_hgs, x_hgs))
+        carr = np.mod(lon + (observer.crln_deg - observer.hgln_deg), 360.0)
     area = _refine_limb_area(geometry, observer, window, ux, uy, uz, np.where(on_disk, area, 0.0), mu,
                              on_disk, mu_floor)
     return SurfaceBlock(window, on_disk, lat, lon, carr, mu, area)
@@ -302,16 +307,22 @@ def _cos_t(sin_rho, cos_rho, big_d, r):
 
 def _refine_limb_area(geometry, observer, window, ux, uy, uz, area, mu, on_disk, mu_floor):
     big_d, r = float(observer.distance_m), float(observer.rsun_m)
-    rho = np.arctan2(np.hypot(ux, uy), -uz)
     rho_limb = np.arcsin(r / big_d)
     h = np.sqrt(geometry.pixel_solid_angle_sr)
-    band = np.abs(rho - rho_limb) < 1.0 * h
     if mu_floor > 0.0:
         with np.errstate(invalid="ignore"):
-            band &= on_disk & (mu >= mu_floor)
-    if not band.any():
+            candidates = on_disk & (mu >= mu_floor)
+        # a pixel within one pixel of the limb has mu below about sqrt(2 h / rho_limb) (twice, for margin)
+        if not candidates.any() or mu_floor > 2.0 * np.sqrt(2.0 * h / rho_limb):
+            return area
+        jj, ii = np.nonzero(candidates)
+    else:
+        jj, ii = np.indices(ux.shape).reshape(2, -1)
+    rho = np.arctan2(np.hypot(ux[jj, ii], uy[jj, ii]), -uz[jj, ii])
+    near = np.abs(rho - rho_limb) < 1.0 * h
+    if not near.any():
         return area
-    jj, ii = np.nonzero(band)
+    jj, ii = jj[near], ii[near]
     k = _LIMB_SUBPIXELS
     off = (np.arange(k) + 0.5) / k - 0.5
     sub_r = (jj + window.row0)[:, None, None] + off[None, :, None]
