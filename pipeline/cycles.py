@@ -301,7 +301,6 @@ def find_extrema(time_decimal_year, smoothed, settings: CycleSettings | None = N
         "extrema": [(float(t[i]), float(v[i]), kinds[k]) for i, k in chain],
         "pending": None if pending is None else (float(t[pending[0]]), float(v[pending[0]]), kinds[pending[1]]),
         "prominence": float(prominence),
-        "last_value": float(v[-1]),
     }
 
 

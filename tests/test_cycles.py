@@ -216,3 +216,16 @@ def test_cli_cycles_exit_codes(tmp_path, capsys):
     assert "cannot read" in capsys.readouterr().err
     assert main(["cycles", str(bad), "--prominence", "-3"]) == 2
     assert "cycles.prominence" in capsys.readouterr().err
+
+
+def test_config_section(tmp_path):
+    # the [cycles] section is registered in pipeline.config.SECTION_CLASSES (shared interfaces)
+    from pipeline.config import load_config
+
+    p = tmp_path / "polecast.toml"
+    p.write_text("[cycles]\nprominence = 15.0\nmin_cycle_years = 6.5\n")
+    cfg = load_config(p)
+    assert cfg.cycles == CycleSettings(prominence=15.0, min_cycle_years=6.5)
+    p.write_text("[cycles]\nwindow = 13\n")
+    with pytest.raises(ConfigError, match=r"\[cycles\]: unknown key\(s\) window"):
+        load_config(p)

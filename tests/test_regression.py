@@ -249,3 +249,17 @@ def test_read_calibration_csv(tmp_path):
     r = tmp_path / "plain.csv"
     r.write_text("# Tessaly calibration (demo)\ncycle,precursor,amplitude\n1,1,2\n2,2,3\n")
     assert read_calibration_csv(r).precursor_error is None
+
+
+def test_config_section(tmp_path):
+    # the [forecast] section is registered in pipeline.config.SECTION_CLASSES (shared interfaces)
+    from pipeline.config import load_config
+
+    p = tmp_path / "polecast.toml"
+    p.write_text('[forecast]\nmethod = "loglinear"\nwindow_years = 1.0\nprecursor_kind = "hemispheres"\n')
+    assert load_config(p).forecast == ForecastSettings(method="loglinear", window_years=1.0,
+                                                       precursor_kind="hemispheres")
+    with pytest.raises(ConfigError, match="forecast.precursor_kind: got 'octupole'"):
+        ForecastSettings(precursor_kind="octupole")
+    with pytest.raises(ConfigError, match="forecast.lag_years: got -1"):
+        ForecastSettings(lag_years=-1.0)
