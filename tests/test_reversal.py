@@ -187,3 +187,32 @@ def test_settings_validation():
 def test_crossing_iso_date():
     # 2034.5 is 2034-07-02T12:00 (timeutil's definition; 365-day year)
     assert Crossing(2034.5, 2034.4, 2034.6, 1).time_iso == "2034-07-02"
+
+
+def test_synthetic_star_reversals_near_cycle_maximum():
+    # Fact of the trade (common practice, no source): polar reversals happen near cycle maximum and
+    # the two poles usually reverse months to about a year apart.  Checked on the true whole-cap
+    # means of the synthetic star Tessaly (pipeline.synth.star), sampled once per rotation.
+    star = pytest.importorskip("pipeline.synth.star")
+    from pipeline.synth.truth import cycle_landmarks_truth
+    from pipeline.timeutil import decimal_year
+
+    h = star.star_history(1)
+    ty = np.atleast_1d(decimal_year(h.times))
+    step = max(1, int(round(27.2753 / float(np.median(np.diff(h.time_days))))))
+    sel = slice(None, None, step)
+    t, north, south = ty[sel], np.asarray(h.north_gauss)[sel], np.asarray(h.south_gauss)[sel]
+    keep = t >= t[-1] - 150.0
+    out = polar_reversals(t[keep], north[keep], south[keep], ReversalSettings(n_bootstrap=0))
+    maxima = [c["maximum_time"] for c in cycle_landmarks_truth(h)
+              if t[keep][0] + 3 < c["maximum_time"] < t[-1] - 3]
+    assert len(maxima) >= 10
+    lags, gaps = [], []
+    for m in maxima:
+        nt = [c.time for c in out["north"].crossings if abs(c.time - m) < 3.0]
+        st = [c.time for c in out["south"].crossings if abs(c.time - m) < 3.0]
+        assert len(nt) == 1 and len(st) == 1, (m, nt, st)  # one reversal per pole per cycle
+        lags += [nt[0] - m, st[0] - m]
+        gaps.append(abs(nt[0] - st[0]))
+    assert np.median(np.abs(lags)) < 1.5  # near maximum (years)
+    assert np.median(gaps) < 1.5 and max(gaps) < 3.0  # months to about a year apart
