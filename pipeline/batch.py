@@ -41,6 +41,9 @@ __all__ = ["IngestSettings", "IngestError", "IngestSummary", "DEFAULT_PATTERNS",
 DEFAULT_PATTERNS = ("*.fits*", "*.fts", "*.fit")
 
 
+_MAX_CRASHES_WITHOUT_PROGRESS = 5
+
+
 class IngestError(RuntimeError):
     """The ingest cannot start or go on (bad path, unreachable scheduler, configuration mismatch)."""
 
@@ -117,11 +120,13 @@ class IngestSummary:
     hashed : int
         Files whose bytes were hashed (their stat was new or changed).
     unreadable : int
-        Files that could not even be read for hashing (not stored; tried
-        again next time).
+        Files neither measured nor stored: unreadable, or their worker
+        failed (tried again next time).
     skip_reasons : Counter
-        Grouped reasons (:func:`pipeline.store.reason_group`) of new skips
-        and unreadable files.
+        Grouped reasons (:func:`pipeline.store.reason_group`) of the new
+        skipped files.
+    unreadable_reasons : Counter
+        Grouped reasons of the files not stored.
     stale_config : int
         Current records of another configuration left as they were (not
         under the scanned paths).
@@ -136,9 +141,9 @@ class IngestSummary:
     hashed: int = 0
     unreadable: int = 0
     skip_reasons: Counter = field(default_factory=Counter)
+    unreadable_reasons: Counter = field(default_factory=Counter)
     stale_config: int = 0
     elapsed_s: float = 0.0
-    skipped_examples: list = field(default_factory=list)
 
     @property
     def new(self) -> int:
@@ -151,15 +156,15 @@ class IngestSummary:
 
     def line(self) -> str:
         """``ingest: 1200 new (1180 ok, 20 skipped: 12 truncated file, 8 ...), 3400 already known``."""
-        skipped = self.new_skipped + self.unreadable
-        inner = f"{self.new_ok} ok, {skipped} skipped"
-        if skipped:
+        inner = f"{self.new_ok} ok, {self.new_skipped} skipped"
+        if self.new_skipped:
             inner += ": " + ", ".join(f"{n} {r}" for r, n in self.skip_reasons.most_common())
         text = f"ingest: {self.new} new ({inner}), {self.known} already known"
         if self.remeasured:
             text += f", {self.remeasured} re-measured with the current configuration"
         if self.unreadable:
-            text += f", {self.unreadable} unreadable (not stored)"
+            why = ", ".join(f"{n} {r}" for r, n in self.unreadable_reasons.most_common())
+            text += f", {self.unreadable} not stored ({why}; tried again next run)"
         if self.stale_config:
             text += f", {self.stale_config} records of another configuration not found under the given paths"
         return text
@@ -333,7 +338,8 @@ class _DaskBackend:
 
         self._done = as_completed(loop=self._client.loop)  # the sliding window's completion queue
         info = self._client.scheduler_info()
-        self.workers = max(1, sum(w.get("nthreads", 1) for w in info.get("workers", {}).values()))
+        # window sized on the threads present now (at least 2, so a cluster still starting gets work)
+        self.workers = max(2, sum(w.get("nthreads", 1) for w in info.get("workers", {}).values()))
 
     def submit(self, fn, *args):
         fut = self._client.submit(fn, *args, pure=False)
@@ -470,6 +476,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     writes: list = []               # MeasuredFile results not yet committed
     links: list = []                # (path, size, mtime_ns, digest) not yet committed
     attempts: Counter = Counter()   # path -> retries after a worker crash
+    crashes = 0                     # pool breakdowns since the last successful task
     last_commit = time.monotonic()
     done_paths = 0
 
@@ -498,7 +505,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         summary.hashed += 1
         if digest is None:
             summary.unreadable += 1
-            summary.skip_reasons[reason_group(error)] += 1
+            summary.unreadable_reasons[reason_group(error)] += 1
             done_paths += 1
             if on_skip:
                 on_skip(path, error)
@@ -577,32 +584,37 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         return True
 
     def failed(kind, payload, exc):
+        """A task raised or its worker died: isolate the file, retry bystanders, never poison the store."""
+        nonlocal crashes
         reason = f"worker failed: {type(exc).__name__}: {' '.join(str(exc).split())}"[:300]
         broken = isinstance(exc, cf.process.BrokenProcessPool)
         if broken:
+            crashes += 1
+            if crashes > _MAX_CRASHES_WITHOUT_PROGRESS:
+                raise IngestError(f"worker processes keep failing ({reason}); nothing more was measured, "
+                                  f"everything committed so far is kept; run again once the cause is fixed")
             backend.restart()
         key = payload[0] if kind == "hash" else payload[0][0]
-        if len(payload) == 1 and broken and attempts[key] < 2:  # an innocent bystander of a crash: try again
+        if len(payload) == 1 and broken and attempts[key] < 2:  # maybe a bystander of another file's crash
             attempts[key] += 1
-            if kind == "hash":
-                pending[backend.submit(hash_files, payload)] = ("hash", payload)
-            else:
-                submit_measure(payload)
+            resubmit(kind, payload)
             return
         if len(payload) > 1:  # isolate the culprit: one file per task
             for item in payload:
-                if kind == "hash":
-                    pending[backend.submit(hash_files, [item])] = ("hash", [item])
-                else:
-                    submit_measure([item])
+                resubmit(kind, [item])
             return
-        if kind == "hash":
-            classify_hashed(payload[0], 0, 0, None, reason)
-        else:
-            from pipeline.measure import skipped_record
+        # a file that fails its worker is reported but not stored (as if unreadable): the cause may be
+        # the machine (memory, a lost worker), so the next run tries it again
+        if kind == "measure":
+            in_flight.pop(payload[0][3], None)
+            key = payload[0][0]
+        classify_hashed(key, 0, 0, None, reason)
 
-            path, size, mtime_ns, digest = payload[0]
-            record(payload, [MeasuredFile(path, size, mtime_ns, digest, skipped_record(path, reason).to_dict())])
+    def resubmit(kind, payload):
+        if kind == "hash":
+            pending[backend.submit(hash_files, payload)] = ("hash", payload)
+        else:
+            submit_measure(payload)
 
     scan_chunks = _chunks(scan_paths(paths, settings.patterns), settings.hash_chunk_files)
     more = True
@@ -623,6 +635,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
                 except Exception as exc:
                     failed(kind, payload, exc)
                     continue
+                crashes = 0
                 if kind == "hash":
                     for item in result:
                         classify_hashed(*item)
