@@ -28,7 +28,8 @@ A reversal is a sign change of the smoothed series that persists:
    nearest in time, within half the distance to the neighbouring reversals).
    Where the crossing falls in a sampling gap wider than 1.5 typical sample
    spacings the interval is widened to the gap's ends: the data only say it
-   happened inside the gap.
+   happened inside the gap.  With the ``"none"`` smoother the residuals are
+   zero, so the interval is only that gap bracket.
 
 The default persistence (0.4 yr) sits below the ~0.5 yr that a six-month
 polarity episode still lasts after the default smoothing, and above the

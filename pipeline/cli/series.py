@@ -11,7 +11,8 @@ import numpy as np
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
 
-__all__ = ["add_parser", "run", "write_rotation_csv", "write_netcdf", "ROTATION_CSV_COLUMNS", "series_overrides"]
+__all__ = ["add_parser", "run", "write_rotation_csv", "write_netcdf", "ROTATION_CSV_COLUMNS", "series_overrides",
+           "add_series_options", "load_records"]
 
 #: Columns of ``--format csv``: one row per Carrington rotation (``time`` = ISO date of its mid-time);
 #: the per-rotation means carry the plain names so the file feeds ``polecast reversals --series``.
