@@ -22,7 +22,8 @@ __all__ = ["main", "build_parser", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE"]
 EXIT_OK, EXIT_SKIPPED, EXIT_USAGE = 0, 1, 2
 
 #: sub-command modules, in the order of the data flow
-COMMANDS = ("measure", "ingest", "export", "cycles", "forecast", "series", "reversals", "synth")
+COMMANDS = ("measure", "synth", "ingest", "export", "series", "reversals", "cycles", "forecast",
+            "run")
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -1,0 +1,138 @@
+"""``polecast run CONFIG.toml`` and ``polecast demo [--out DIR]``: the whole job in one command."""
+
+from __future__ import annotations
+
+import dataclasses
+import sys
+from pathlib import Path
+
+from pipeline.cli import EXIT_OK, EXIT_USAGE
+
+__all__ = ["add_parser", "run", "demo", "print_outcome"]
+
+_MAX_SKIP_LINES = 20
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("run", help="the whole job as a configuration says (incremental)",
+                       description="Ingest (only new files) -> polar series -> reversals -> cycle landmarks -> "
+                                   "precursor -> forecast (appending to the forecast history) -> report, as the "
+                                   "TOML configuration says. Exit 0 ok, 1 when new files were skipped, 2 for a "
+                                   "configuration or usage error.")
+    p.add_argument("config", metavar="CONFIG.toml", help="configuration file (see configs/example.toml)")
+    p.set_defaults(func=run)
+    d = sub.add_parser("demo", help="run the embedded demo (synthetic star, fictional magnetograph)",
+                       description="Run the demo configuration (configs/demo.toml) on the synthetic archive in "
+                                   "demo_fits/: no network, no server. Prints the forecast, the reversal epochs "
+                                   "against the synthetic star's truth, and where the report is.")
+    d.add_argument("--out", default="polecast-demo", metavar="DIR", help="output folder (default ./polecast-demo)")
+    d.add_argument("--data", metavar="DIR", help="the demo archive (default: demo_fits/ of the clone)")
+    d.add_argument("--workers", type=int, metavar="N", help="local worker processes (default: all cores)")
+    d.set_defaults(func=demo)
+
+
+def _on_skip_printer():
+    shown = [0]
+
+    def on_skip(path, reason):
+        shown[0] += 1
+        if shown[0] <= _MAX_SKIP_LINES:
+            print(f"polecast: skipped {path}: {reason}", file=sys.stderr)
+    return on_skip
+
+
+def _fmt_crossing(c):
+    return f"{c['time_iso']} ({c['time']:.3f}, interval {c['low']:.3f}-{c['high']:.3f})"
+
+
+def print_outcome(result, stream=sys.stdout) -> None:
+    """Forecast, reversal epochs (and the truth when known) and where the products are."""
+    s = result.summary
+    f = s["forecast"]
+    w = stream.write
+    w(f"{result.ingest_line}\n")
+    w(f"frames measured in the store: {s['frames']}\n")
+    for pole in ("north", "south", "dipole"):
+        r = s["reversals"][pole]
+        fin = r.get("final")
+        w(f"{pole:6s} reversals: {len(r['crossings'])}; final: {_fmt_crossing(fin) if fin else 'none'}\n")
+    lo68, hi68 = f["interval_68"]
+    lo95, hi95 = f["interval_95"]
+    w(f"next-cycle amplitude: {f['amplitude']:.1f} (68%: {lo68:.1f}-{hi68:.1f}; 95%: {lo95:.1f}-{hi95:.1f}); "
+      f"precursor {f['precursor']:.3g} G, method {f['method']}, {f['n_cycles']} cycles, r = {f['r']:.2f}\n")
+    for warning in f.get("warnings", []):
+        w(f"warning: {warning}\n")
+    truth = s.get("truth")
+    if truth:
+        for pole in ("north", "south"):
+            fin = s["reversals"][pole].get("final")
+            t = truth["reversals"].get(pole)
+            diff = "" if not (fin and t is not None) else f" (recovered - truth = {fin['time'] - t:+.3f} yr)"
+            w(f"truth: {pole} final reversal {t if t is None else f'{t:.3f}'}{diff}\n")
+        amp = truth.get("next_amplitude")
+        if amp is not None:
+            inside = lo95 <= amp <= hi95
+            w(f"truth: next-cycle amplitude {amp:.1f} ({'inside' if inside else 'OUTSIDE'} the 95% interval)\n")
+    w(f"products: {result.products_dir}\n")
+    if result.report:
+        w(f"report: {result.report}\n")
+    w(f"caution: {s['cautions']}\n")
+
+
+def _execute(config) -> int:
+    from pipeline.config import ConfigError
+    from pipeline.run import run_pipeline
+
+    try:
+        result = run_pipeline(config, progress=sys.stdout.isatty(), on_skip=_on_skip_printer())
+    except ConfigError:
+        raise
+    except (ValueError, RuntimeError, OSError) as exc:  # StoreError / IngestError are RuntimeErrors
+        print(f"polecast: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    for m in result.messages:
+        print(f"polecast: {m}", file=sys.stderr)
+    print_outcome(result)
+    return result.exit_code
+
+
+def _load(path: Path, **overrides):
+    from pipeline.config import load_config
+
+    config = load_config(path, **overrides)
+    sections = dict(config.sections)
+    sections["run"] = config.run.resolved(path.resolve().parent)
+    return dataclasses.replace(config, sections=sections)
+
+
+def run(args) -> int:
+    path = Path(args.config)
+    if not path.exists():
+        print(f"polecast run: configuration file {path} not found", file=sys.stderr)
+        return EXIT_USAGE
+    return _execute(_load(path))
+
+
+def demo(args) -> int:
+    from pipeline.config import ConfigError
+    from pipeline.run import find_demo_data
+
+    try:
+        data = find_demo_data(args.data)
+    except ConfigError as exc:
+        print(f"polecast demo: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    conf = data.parent / "configs" / "demo.toml"
+    if not conf.exists():
+        print(f"polecast demo: {conf} not found (run from a clone of polecast)", file=sys.stderr)
+        return EXIT_USAGE
+    config = _load(conf, ingest={"workers": args.workers})
+    out = Path(args.out).resolve()
+    run_settings = dataclasses.replace(
+        config.run, archive=(str(data),), sunspots=str(data / "sunspots.csv"),
+        calibration=str(data / "calibration.csv"), truth=str(data / "truth.json"),
+        store=str(out / "store.sqlite"), products_dir=str(out), history=str(out / "forecast_history.jsonl"))
+    sections = dict(config.sections)
+    sections["run"] = run_settings
+    code = _execute(dataclasses.replace(config, sections=sections))
+    return EXIT_OK if code == EXIT_OK else code
