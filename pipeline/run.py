@@ -187,9 +187,9 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
     from pipeline.cli.forecast import precursor_from_store
-    from pipeline.cli.series import write_netcdf
-    from pipeline.cycles import cycle_landmarks, read_monthly_csv
+    from pipeline.cycles import read_monthly_csv
     from pipeline.history import append_history, history_entry
+    from pipeline.ncio import write_netcdf
     from pipeline.regression import forecast_amplitude, read_calibration_csv
     from pipeline.reversal import band_reversals, series_reversals
     from pipeline.store import open_store
@@ -218,7 +218,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     series = polar_series(records, config.series)
     diagram = latitude_time_diagram(records, config.series)
     write_netcdf(series, out / "series.nc")
-    diagram.to_dataset(name=diagram.name or "br_gauss").to_netcdf(out / "latitude_time.nc", engine="h5netcdf")
+    write_netcdf(diagram, out / "latitude_time.nc")
 
     # 3. reversals (poles, dipole, latitude bands)
     smoother = config.series.smoother
@@ -228,9 +228,9 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     _dump(out / "reversals.json", reversals)
 
     # 4. cycle landmarks
-    months = read_monthly_csv(sunspots)
-    cycles = cycle_landmarks(months.time_decimal_year, months.values, config.cycles)
-    _dump(out / "cycles.json", landmarks_document(cycles, config.cycles))
+    cycles_doc = landmarks_document(read_monthly_csv(sunspots), config.cycles)
+    cycles = cycles_doc["cycles"]
+    _dump(out / "cycles.json", cycles_doc)
 
     # 5. precursor and forecast
     table = read_calibration_csv(calibration)

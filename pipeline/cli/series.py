@@ -10,8 +10,9 @@ import numpy as np
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
+from pipeline.ncio import write_netcdf
 
-__all__ = ["add_parser", "run", "write_rotation_csv", "write_netcdf", "ROTATION_CSV_COLUMNS", "series_overrides",
+__all__ = ["add_parser", "run", "write_rotation_csv", "ROTATION_CSV_COLUMNS", "series_overrides",
            "add_series_options", "load_records"]
 
 #: Columns of ``--format csv``: one row per Carrington rotation (``time`` = ISO date of its mid-time);
@@ -74,16 +75,6 @@ def write_rotation_csv(ds, stream) -> int:
     for i in range(ds.sizes["rotation"]):
         w.writerow([_cell(c[i]) for c in cols])
     return int(ds.sizes["rotation"])
-
-
-def write_netcdf(ds, path) -> None:
-    """Write a PolarSeries to netCDF-4 (netCDF4 engine, else h5netcdf)."""
-    import importlib.util
-
-    engine = "netcdf4" if importlib.util.find_spec("netCDF4") is not None else "h5netcdf"
-    enc = {name: {"units": "milliseconds since 1970-01-01 00:00:00", "calendar": "proleptic_gregorian",
-                  "dtype": "float64"} for name in ("time", "rotation_time")}
-    ds.to_netcdf(path, engine=engine, encoding=enc)
 
 
 def load_records(store_path, prog: str):
