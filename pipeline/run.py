@@ -186,7 +186,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     from pipeline.aggregator import band_cap_means, latitude_time_diagram, polar_series
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
-    from pipeline.cli.forecast import precursor_from_store
+    from pipeline.precursor import precursor_for_forecast
     from pipeline.cycles import read_monthly_csv
     from pipeline.history import append_history, history_entry
     from pipeline.ncio import write_netcdf
@@ -235,7 +235,10 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     # 5. precursor and forecast
     table = read_calibration_csv(calibration)
     messages += [f"calibration {calibration}: {p}" for p in table.problems]
-    item = precursor_from_store(rs.store, str(sunspots), config.forecast, config)
+    try:
+        item = precursor_for_forecast(series, cycles, config.forecast, config.reversals, smoother)
+    except ValueError as exc:
+        raise ValueError(f"cannot take the precursor from the measured series: {exc}") from None
     result = forecast_amplitude(table, item["precursor_gauss"], config.forecast,
                                 precursor_error=item["precursor_error_gauss"])
     forecast = result.to_dict()

@@ -56,52 +56,24 @@ def _clean(value):
     return value
 
 
-def _final_reversal_time(result):
-    """Decimal-year time of the final crossing of a ``find_reversals`` result, or None."""
-    final = result.get("final") if isinstance(result, dict) else getattr(result, "final", None)
-    if final is None:
-        return None
-    return float(final["time"] if isinstance(final, dict) else getattr(final, "time"))
-
-
 def precursor_from_store(store_path, sunspots_path, settings, config=None) -> dict:
-    """The precursor of the coming cycle from a store of measured frames.
+    """The precursor of the coming cycle from a store of measured frames and a sunspot file.
 
-    At the last cycle minimum of the sunspot series when the polar series
-    covers its window; when the final polarity reversal of the dipole lies
-    after that minimum (the next minimum still ahead), at ``settings.lag_years``
-    after the reversal, or from the newest full window.
-
-    Parameters
-    ----------
-    store_path, sunspots_path : str
-        The store (``pipeline.store``) and the monthly sunspot CSV.
-    settings : pipeline.regression.ForecastSettings
-        ``precursor_kind``, ``window_years``, ``lag_years``.
-    config : pipeline.config.Config, optional
-        Its ``series``, ``cycles`` and ``reversals`` sections are used.
-
-    Returns
-    -------
-    dict
-        ``precursor_gauss``, ``precursor_error_gauss``, ``route`` (``minimum`` or
-        ``after_reversal``), ``minimum_time``, ``reversal_time``, ``data_date``
-        (ISO date of the newest rotation), ``notes`` and the window details.
+    Reads the store and the monthly sunspot CSV, builds the polar series and
+    the cycle landmarks, and hands them to
+    :func:`pipeline.precursor.precursor_for_forecast` (see there for the choice
+    between the value at the last minimum and the value after the final
+    reversal).
 
     Raises
     ------
     ValueError
         When the store, the sunspot file or the coverage cannot give a precursor.
     """
-    import dataclasses
-
-    import numpy as np
-
-    from pipeline.aggregator import polar_series  # issue 5; imported lazily
+    from pipeline.aggregator import polar_series
     from pipeline.cycles import cycle_landmarks, read_monthly_csv
-    from pipeline.precursor import latest_precursor, precursor_after_reversal, precursor_at, rotation_magnitude
-    from pipeline.store import open_store  # issue 4; imported lazily
-    from pipeline.timeutil import decimal_year, iso_date
+    from pipeline.precursor import precursor_for_forecast
+    from pipeline.store import open_store
 
     sections = getattr(config, "sections", {}) if config is not None else {}
     with open_store(store_path) as store:
@@ -113,37 +85,9 @@ def precursor_from_store(store_path, sunspots_path, settings, config=None) -> di
     cycles = cycle_landmarks(months.time_decimal_year, months.values, sections.get("cycles"))
     if not cycles:
         raise ValueError(f"sunspot file {sunspots_path}: no cycle minimum found; give a longer monthly series")
-    minimum = cycles[-1]["minimum_time"]
-    kind, w = settings.precursor_kind, settings.window_years
-    time, value, _ = rotation_magnitude(series, kind)
-    measured = np.isfinite(value)
-    if not measured.any():
-        raise ValueError(f"store {store_path}: the polar series has no measured rotation")
-    newest = float(time[measured].max())
-    from pipeline.reversal import ReversalSettings, find_reversals  # issue 5; imported lazily
-
-    rev_settings = sections.get("reversals") or ReversalSettings()
-    # only the epoch is needed here: no bootstrap
-    rev_settings = dataclasses.replace(rev_settings, n_bootstrap=0)
-    smoother = sections["series"].smoother if "series" in sections else None
-    result = find_reversals(np.atleast_1d(decimal_year(series["rotation_time"].values)),
-                            np.asarray(series["dipole_br_rotation_gauss"].values, dtype=np.float64),
-                            rev_settings, smoother)
-    reversal = _final_reversal_time(result)
-    if reversal is not None and reversal > minimum:
-        if settings.lag_years is None:
-            item = latest_precursor(series, reversal, kind=kind, window_years=w)
-        else:
-            item = precursor_after_reversal(series, reversal, settings.lag_years, kind=kind, window_years=w)
-        item["route"] = "after_reversal"
-    else:
-        if minimum + w > newest:
-            raise ValueError(f"the polar series ends at {newest:.3f}, before the window of +-{w:g} yr around the "
-                             f"last cycle minimum {minimum:.3f} is complete; wait for more data")
-        item = precursor_at(series, minimum, kind=kind, window_years=w)
-        item.update(route="minimum", notes=[])
-    item.update(minimum_time=minimum, reversal_time=reversal, data_date=iso_date(float(newest)), kind=kind)
-    return item
+    series_settings = sections.get("series")
+    return precursor_for_forecast(series, cycles, settings, sections.get("reversals"),
+                                  series_settings.smoother if series_settings is not None else None)
 
 
 def write_text(doc: dict, stream=None) -> None:
