@@ -101,7 +101,7 @@ class StarHistory:
         period_yr, north_share, lag_yr, tilt_factor, driving_precursor_gauss``.
     regions : dict of ndarray
         One entry per emerged region: ``time_days, lead_lat_deg, follow_lat_deg,
-        lon_deg, flux_mx, lead_sign, separation_deg, tilt_deg, cycle``.
+        lon_deg, flux_mx, lead_sign, hemisphere, separation_deg, tilt_deg, cycle``.
     month_start : ndarray of datetime64
     month_mid_yr, sunspot_true, sunspot_observed, sunspot_smooth : ndarray
     """
@@ -213,7 +213,8 @@ def _cycle_regions(p: StarParameters, seed: int, number: int, start_yr: float, p
             step=step_of, frac=frac_in_step,
             lead_lat_deg=hemi * (lat - half), follow_lat_deg=hemi * (lat + half),
             lon_deg=rng.uniform(0.0, 360.0, m), flux_mx=flux,
-            lead_sign=np.full(m, parity * hemi, dtype=np.int8), separation_deg=sep, tilt_deg=tilt,
+            lead_sign=np.full(m, parity * hemi, dtype=np.int8), hemisphere=np.full(m, hemi, dtype=np.int8),
+            separation_deg=sep, tilt_deg=tilt,
             cycle=np.full(m, number, dtype=np.int32)))
     return {k: np.concatenate([o[k] for o in out]) for k in out[0]}
 
