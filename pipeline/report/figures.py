@@ -1,0 +1,424 @@
+"""The report's figures: one pure function per figure, each writing a PNG and returning its path.
+
+Every function takes plain products (a PolarSeries :class:`xarray.Dataset`,
+the latitude-time :class:`xarray.DataArray`, the reversal / cycle / forecast
+JSON objects as dicts, a calibration table, history entries), draws with
+matplotlib's non-interactive Agg canvas (no display, no global pyplot state)
+and saves one PNG.  Times are drawn as decimal years (UTC).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import TwoSlopeNorm
+from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
+
+from pipeline.timeutil import decimal_year
+
+__all__ = [
+    "POLE_COLOURS",
+    "polar_series_figure",
+    "latitude_time_figure",
+    "calibration_figure",
+    "forecast_history_figure",
+    "diagnostics_figure",
+    "figure_size_in",
+]
+
+#: line colours of the three series (colour-blind-safe pairs, our own choice)
+POLE_COLOURS = {"north": "#1b5e9e", "south": "#c2402a", "dipole": "#2f7d3b"}
+_REVERSAL_ALPHA = 0.16
+_GRID = {"color": "0.88", "linewidth": 0.6}
+
+
+def figure_size_in(settings, aspect: float) -> tuple[float, float]:
+    """``(width, height)`` in inches for a figure ``aspect`` = height / width."""
+    width = float(settings.figure_width_in)
+    return width, width * aspect
+
+
+def _new_figure(settings, aspect: float, nrows: int = 1, ncols: int = 1, **kw):
+    fig = Figure(figsize=figure_size_in(settings, aspect), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(nrows, ncols, squeeze=False, **kw)
+    for ax in axes.ravel():
+        ax.grid(True, **_GRID)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+    return fig, axes
+
+
+def _save(fig, out_path, settings) -> Path:
+    out_path = Path(out_path)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(out_path, dpi=int(settings.dpi), format="png", metadata={"Software": None})
+    return out_path
+
+
+def _years(t) -> np.ndarray:
+    t = np.asarray(t)
+    if t.size == 0:
+        return np.zeros(0)
+    if t.dtype.kind in ("f", "i", "u"):
+        return t.astype(np.float64)
+    return np.atleast_1d(decimal_year(t)).astype(np.float64)
+
+
+def _no_data(ax, text: str) -> None:
+    ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", color="0.4")
+
+
+def _mark_reversals(ax, result: dict | None, colour: str, label: str | None) -> None:
+    """Shaded interval and a vertical line per crossing; the final one drawn heavier."""
+    if not result:
+        return
+    final = result.get("final") or {}
+    for c in result.get("crossings") or []:
+        lo, hi, t = c.get("low"), c.get("high"), c.get("time")
+        if t is None:
+            continue
+        if lo is not None and hi is not None and hi > lo:
+            ax.axvspan(lo, hi, color=colour, alpha=_REVERSAL_ALPHA, linewidth=0)
+        is_final = final and abs(float(final.get("time", math.nan)) - float(t)) < 1e-9
+        ax.axvline(t, color=colour, linewidth=1.8 if is_final else 0.9, linestyle="-" if is_final else ":",
+                   label=label if is_final else None)
+
+
+def _mark_cycles(ax, cycles: dict | None) -> None:
+    """Vertical lines at the cycle minima (dashed) and maxima (dash-dot) of a ``polecast cycles`` object."""
+    if not cycles:
+        return
+    lo, hi = ax.get_xlim()
+    seen = set()
+    for c in cycles.get("cycles") or []:
+        for key, style, name in (("minimum_time", "--", "cycle minimum"), ("maximum_time", "-.", "cycle maximum")):
+            t = c.get(key)
+            if t is None or not lo <= t <= hi:
+                continue
+            ax.axvline(t, color="0.35", linestyle=style, linewidth=0.9,
+                       label=name if name not in seen else None)
+            seen.add(name)
+
+
+def polar_series_figure(series, out_path, settings, *, reversals: dict | None = None,
+                        cycles: dict | None = None) -> Path:
+    """North, south and axial-dipole polar fields per rotation, smoothed, with reversals and cycle extrema.
+
+    Parameters
+    ----------
+    series : xarray.Dataset
+        A PolarSeries (``rotation_time``, ``*_br_rotation_gauss``,
+        ``*_br_rotation_error_gauss``, ``*_br_smooth_gauss``; gauss).
+    out_path : path-like
+        The PNG to write.
+    settings : pipeline.report.ReportSettings
+    reversals : dict, optional
+        The ``polecast reversals`` object (``north``/``south``/``dipole`` with
+        ``crossings`` and ``final``; times in decimal years).
+    cycles : dict, optional
+        The ``polecast cycles`` object (``cycles``: minima and maxima, decimal years).
+
+    Returns
+    -------
+    pathlib.Path
+        ``out_path``.
+
+    Notes
+    -----
+    The dipole panel shows the axial dipole proxy ``(N - S) / 2`` (DESIGN.md).
+    Error bars are the one-sigma standard errors of the rotation means.
+    """
+    fig, axes = _new_figure(settings, 0.62, 2, 1, sharex=True)
+    top, bottom = axes[0, 0], axes[1, 0]
+    n_rot = int(series.sizes.get("rotation", 0)) if series is not None else 0
+    if n_rot == 0:
+        _no_data(top, "no measured rotation")
+        _no_data(bottom, "no measured rotation")
+    else:
+        t = _years(series["rotation_time"].values)
+        for ax, poles in ((top, ("north", "south")), (bottom, ("dipole",))):
+            for pole in poles:
+                colour = POLE_COLOURS[pole]
+                y = series[f"{pole}_br_rotation_gauss"].values
+                err = series[f"{pole}_br_rotation_error_gauss"].values
+                ok = np.isfinite(y)
+                ax.errorbar(t[ok], y[ok], yerr=np.where(np.isfinite(err[ok]), err[ok], 0.0), fmt="o",
+                            markersize=2.4, color=colour, ecolor=colour, elinewidth=0.6, alpha=0.55,
+                            label=f"{pole} (per rotation)")
+                sm = series[f"{pole}_br_smooth_gauss"].values
+                ax.plot(t, sm, color=colour, linewidth=1.8, label=f"{pole} (smoothed)")
+            ax.axhline(0.0, color="0.2", linewidth=0.7)
+        reversals = reversals or {}
+        _mark_reversals(top, reversals.get("north"), POLE_COLOURS["north"], "north reversal (final)")
+        _mark_reversals(top, reversals.get("south"), POLE_COLOURS["south"], "south reversal (final)")
+        _mark_reversals(bottom, reversals.get("dipole"), POLE_COLOURS["dipole"], "dipole reversal (final)")
+        pad = max(0.05 * (t.max() - t.min()), 0.1)
+        top.set_xlim(t.min() - pad, t.max() + pad)
+        _mark_cycles(top, cycles)
+        _mark_cycles(bottom, cycles)
+        for ax in (top, bottom):
+            ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    top.set_ylabel("polar-cap mean Br (G)")
+    bottom.set_ylabel("(N - S)/2 (G)")
+    bottom.set_xlabel("time (decimal year, UTC)")
+    smoothing = "" if series is None else str(series.attrs.get("smoothing_description", ""))
+    b0 = "" if series is None else str(series.attrs.get("b0_method", ""))
+    top.set_title(f"Polar fields per Carrington rotation (B0 method: {b0 or 'n/a'}; smoothing: "
+                  f"{smoothing or 'n/a'}); shaded: reversal intervals", fontsize="small")
+    return _save(fig, out_path, settings)
+
+
+def latitude_time_figure(diagram, out_path, settings, *, cap_latitude_deg: float = 60.0) -> Path:
+    """Latitude-time diagram of the longitude-averaged Br (gauss) with the cap boundary marked.
+
+    Parameters
+    ----------
+    diagram : xarray.DataArray
+        Dims ``("latitude", "rotation")``, coordinates ``latitude_lower``,
+        ``latitude_upper`` (deg) and ``rotation_time``; gauss.
+    out_path : path-like
+    settings : pipeline.report.ReportSettings
+    cap_latitude_deg : float
+        Polar-cap boundary drawn at +- this latitude (degrees).
+
+    Returns
+    -------
+    pathlib.Path
+
+    Notes
+    -----
+    The colour scale is symmetric about zero at the 98th percentile of |Br|
+    (robust to a few extreme bins; common practice, no source); empty bins
+    are left blank.
+    """
+    fig, axes = _new_figure(settings, 0.5)
+    ax = axes[0, 0]
+    ax.grid(False)
+    values = None if diagram is None else np.asarray(diagram.values, dtype=np.float64)
+    if values is None or values.size == 0 or not np.isfinite(values).any() or diagram.sizes.get("rotation", 0) < 1:
+        _no_data(ax, "no latitude profile in the measured frames")
+    else:
+        t = _years(diagram["rotation_time"].values)
+        if t.size > 1:
+            step = np.diff(t)
+            t_edges = np.concatenate([[t[0] - step[0] / 2], t[:-1] + step / 2, [t[-1] + step[-1] / 2]])
+        else:
+            t_edges = np.array([t[0] - 0.037, t[0] + 0.037])  # one rotation ~ 27.3 d (common practice)
+        if "latitude_lower" in diagram.coords:
+            lat_edges = np.concatenate([diagram["latitude_lower"].values, diagram["latitude_upper"].values[-1:]])
+        else:
+            lat = np.asarray(diagram["latitude"].values, dtype=np.float64)
+            half = 0.5 * (lat[1] - lat[0]) if lat.size > 1 else 0.5
+            lat_edges = np.concatenate([lat - half, lat[-1:] + half])
+        vmax = float(np.nanpercentile(np.abs(values), 98)) or 1.0
+        mesh = ax.pcolormesh(t_edges, lat_edges, np.ma.masked_invalid(values), cmap="RdBu_r",
+                             norm=TwoSlopeNorm(vcenter=0.0, vmin=-vmax, vmax=vmax), shading="flat")
+        bar = fig.colorbar(mesh, ax=ax, pad=0.01)
+        bar.set_label("longitude-averaged Br (G)")
+        for sign in (1, -1):
+            ax.axhline(sign * cap_latitude_deg, color="k", linestyle="--", linewidth=1.0,
+                       label=f"cap boundary |lat| = {cap_latitude_deg:g} deg" if sign > 0 else None)
+        ax.set_ylim(lat_edges.min(), lat_edges.max())
+        ax.legend(fontsize="x-small", loc="center right", framealpha=0.85)
+    ax.set_xlabel("time (decimal year, UTC)")
+    ax.set_ylabel("heliographic latitude (deg)")
+    ax.set_title("Longitude-averaged radial field per Carrington rotation", fontsize="small")
+    return _save(fig, out_path, settings)
+
+
+def _band(fit, x_grid, level, predict):
+    lo, hi = np.empty_like(x_grid), np.empty_like(x_grid)
+    mid = np.empty_like(x_grid)
+    for i, x in enumerate(x_grid):
+        mid[i], lo[i], hi[i] = predict(fit, float(x), level)
+    return mid, lo, hi
+
+
+def calibration_figure(table, out_path, settings, *, forecast: dict | None = None,
+                       method: str = "ols") -> Path:
+    """Precursor against next-cycle amplitude, the fitted line, its prediction bands and the forecast.
+
+    Parameters
+    ----------
+    table : pipeline.regression.CalibrationTable
+        Past cycles: precursor (gauss) and amplitude (sunspot number).
+    out_path : path-like
+    settings : pipeline.report.ReportSettings
+    forecast : dict, optional
+        The ``polecast forecast`` object (``precursor``, ``precursor_error``,
+        ``amplitude``, ``interval_68``, ``interval_95``, ``method``).
+    method : str
+        Regression method when ``forecast`` does not name one.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Notes
+    -----
+    The bands are the 68.27% and 95% prediction intervals of a new cycle at
+    each precursor, :func:`pipeline.regression.predict` (Draper & Smith 1998,
+    Applied Regression Analysis, sec. 1.4), from the same fit the forecast
+    used.
+    """
+    from pipeline.regression import LEVEL_68, LEVEL_95, METHODS, predict
+
+    fig, axes = _new_figure(settings, 0.62)
+    ax = axes[0, 0]
+    x = np.asarray(table.precursor, dtype=np.float64)
+    y = np.asarray(table.amplitude, dtype=np.float64)
+    method = (forecast or {}).get("method") or method
+    fitter = METHODS.get(method)
+    xs = list(x)
+    if forecast and forecast.get("precursor") is not None:
+        xs.append(float(forecast["precursor"]))
+    if x.size >= 3 and fitter is not None:
+        span = max(xs) - min(xs) or 1.0
+        grid = np.linspace(min(xs) - 0.08 * span, max(xs) + 0.08 * span, 120)
+        if method == "loglinear":
+            grid = grid[grid > 0]
+        fit = fitter(x, y, table.precursor_error, table.amplitude_error)
+        mid, lo95, hi95 = _band(fit, grid, LEVEL_95, predict)   # Draper & Smith (1998) sec. 1.4
+        _, lo68, hi68 = _band(fit, grid, LEVEL_68, predict)
+        ax.fill_between(grid, lo95, hi95, color="#9db7d5", alpha=0.35, linewidth=0, label="95% prediction band")
+        ax.fill_between(grid, lo68, hi68, color="#4f7fb5", alpha=0.35, linewidth=0, label="68% prediction band")
+        ax.plot(grid, mid, color="#173f6b", linewidth=1.6, label=f"fitted line ({method})")
+    xerr = None if table.precursor_error is None else np.asarray(table.precursor_error)
+    yerr = None if table.amplitude_error is None else np.asarray(table.amplitude_error)
+    ax.errorbar(x, y, xerr=xerr, yerr=yerr, fmt="o", color="0.15", markersize=4.5, elinewidth=0.7,
+                label="calibration cycles", zorder=4)
+    for name, xi, yi in zip(table.cycle, x, y):
+        ax.annotate(_short(str(name), 16), (xi, yi), textcoords="offset points", xytext=(4, 4), fontsize="xx-small",
+                    color="0.3")
+    if forecast and forecast.get("amplitude") is not None:
+        xp, yp = float(forecast["precursor"]), float(forecast["amplitude"])
+        lo95, hi95 = forecast.get("interval_95") or (yp, yp)
+        lo68, hi68 = forecast.get("interval_68") or (yp, yp)
+        xe = forecast.get("precursor_error")
+        ax.errorbar([xp], [yp], yerr=[[yp - lo95], [hi95 - yp]], xerr=None if xe is None else [xe], fmt="none",
+                    ecolor="#d9822b", elinewidth=1.0, capsize=4, zorder=5)
+        ax.errorbar([xp], [yp], yerr=[[yp - lo68], [hi68 - yp]], fmt="D", color="#d9822b", markersize=7,
+                    elinewidth=3.0, capsize=0, zorder=6,
+                    label=f"forecast {yp:.0f} (68%: {lo68:.0f}-{hi68:.0f}; 95%: {lo95:.0f}-{hi95:.0f})")
+    ax.set_xlabel("polar-field precursor (G)")
+    ax.set_ylabel("next-cycle amplitude (13-month smoothed sunspot number)")
+    ax.set_title("Calibration of the polar-field precursor", fontsize="small")
+    ax.legend(fontsize="x-small", loc="upper left", framealpha=0.85)
+    return _save(fig, out_path, settings)
+
+
+def forecast_history_figure(entries: list, out_path, settings) -> Path:
+    """How the forecast moved with each update: amplitude and its 68% / 95% intervals against data date.
+
+    Parameters
+    ----------
+    entries : list of dict
+        :func:`pipeline.history.read_history` entries (``data_date`` ISO date,
+        ``amplitude``, ``interval_68``, ``interval_95``); entries without a
+        usable date or amplitude are left out.
+    out_path : path-like
+    settings : pipeline.report.ReportSettings
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    rows = []
+    for e in entries:
+        try:
+            t = float(_years(np.array([str(e["data_date"])[:10]], dtype="datetime64[D]"))[0])
+            a = float(e["amplitude"])
+        except (KeyError, TypeError, ValueError):
+            continue
+        i68 = e.get("interval_68") or [a, a]
+        i95 = e.get("interval_95") or [a, a]
+        rows.append((t, a, *[math.nan if v is None else float(v) for v in (*i68, *i95)]))
+    rows.sort()
+    fig, axes = _new_figure(settings, 0.45)
+    ax = axes[0, 0]
+    if not rows:
+        _no_data(ax, "no forecast history yet")
+    else:
+        arr = np.array(rows)
+        t, a, lo68, hi68, lo95, hi95 = arr.T
+        if t.size > 1:
+            ax.fill_between(t, lo95, hi95, step="post", color="#e7c49b", alpha=0.5, linewidth=0, label="95% interval")
+            ax.fill_between(t, lo68, hi68, step="post", color="#d9822b", alpha=0.45, linewidth=0, label="68% interval")
+        ax.errorbar(t, a, yerr=[a - lo95, hi95 - a], fmt="none", ecolor="#b0651c", elinewidth=0.8, capsize=3)
+        ax.plot(t, a, "o-", color="#7a3e0b", markersize=4, linewidth=1.2, label="forecast amplitude")
+        if t.size == 1:
+            ax.set_xlim(t[0] - 0.5, t[0] + 0.5)
+        ax.legend(fontsize="x-small", loc="best", framealpha=0.85)
+    ax.set_xlabel("date of the newest data used (decimal year)")
+    ax.set_ylabel("forecast amplitude (sunspot number)")
+    ax.set_title(f"Forecast history ({len(rows)} update{'s' if len(rows) != 1 else ''})", fontsize="small")
+    return _save(fig, out_path, settings)
+
+
+def diagnostics_figure(series, skip_reasons: dict, out_path, settings) -> Path:
+    """B0 angle and polar-cap coverage per frame over time, and skipped files by reason.
+
+    Parameters
+    ----------
+    series : xarray.Dataset or None
+        A PolarSeries (per frame: ``time``, ``b0_deg`` in degrees,
+        ``north_coverage``, ``south_coverage`` as fractions).
+    skip_reasons : dict
+        Reason group -> number of skipped files (e.g. ``Store.summary()["skip_reasons"]``).
+    out_path : path-like
+    settings : pipeline.report.ReportSettings
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    fig, axes = _new_figure(settings, 0.85, 3, 1)
+    ax_b0, ax_cov, ax_skip = axes[:, 0]
+    n = 0 if series is None else int(series.sizes.get("time", 0))
+    if n == 0:
+        _no_data(ax_b0, "no measured frame")
+        _no_data(ax_cov, "no measured frame")
+    else:
+        t = _years(series["time"].values)
+        ax_b0.plot(t, series["b0_deg"].values, ".", color="0.25", markersize=2.5)
+        ax_b0.axhline(0.0, color="0.5", linewidth=0.6)
+        for pole in ("north", "south"):
+            ax_cov.plot(t, series[f"{pole}_coverage"].values, ".", color=POLE_COLOURS[pole], markersize=2.5,
+                        label=f"{pole} cap")
+        ax_cov.set_ylim(0.0, 1.05)
+        ax_cov.legend(fontsize="x-small", loc="lower right", framealpha=0.85)
+        ax_cov.set_xlim(ax_b0.get_xlim())
+    ax_b0.set_ylabel("B0 (deg)")
+    ax_b0.set_title(f"Observing geometry and coverage of {n} measured frame{'s' if n != 1 else ''}",
+                    fontsize="small")
+    ax_cov.set_ylabel("cap coverage (fraction)")
+    ax_cov.set_xlabel("time (decimal year, UTC)")
+    items = sorted((skip_reasons or {}).items(), key=lambda kv: (-kv[1], kv[0]))
+    if not items:
+        _no_data(ax_skip, "no skipped file")
+        ax_skip.set_yticks([])
+    else:
+        labels = [_short(str(k)) for k, _ in items]
+        counts = [int(v) for _, v in items]
+        pos = np.arange(len(items))
+        ax_skip.barh(pos, counts, color="#8c6bb1")
+        ax_skip.xaxis.set_major_locator(MaxNLocator(integer=True))
+        ax_skip.set_yticks(pos, labels, fontsize="x-small")
+        ax_skip.invert_yaxis()
+        for p, c in zip(pos, counts):
+            ax_skip.text(c, p, f" {c}", va="center", fontsize="x-small")
+    ax_skip.set_xlabel("skipped files")
+    ax_skip.set_title("Skipped files by reason", fontsize="small")
+    return _save(fig, out_path, settings)
+
+
+def _short(text: str, limit: int = 48) -> str:
+    # matplotlib treats '$' as mathtext; show reasons literally
+    text = text.replace("$", r"\$")
+    return text if len(text) <= limit else text[: limit - 1] + "\u2026"

@@ -1,0 +1,258 @@
+"""The report page's sections from the products: tables of reversals, forecast, truth, store and config.
+
+Pure functions from plain products to HTML fragments; every value passes
+through :func:`pipeline.report.html.esc` (inside :func:`table_html`,
+:func:`note_html` and :func:`json_block`).
+"""
+
+from __future__ import annotations
+
+import math
+
+from pipeline.report.html import figure_html, format_number, json_block, note_html, page_html, table_html
+
+__all__ = ["CAUTION_TEXTS", "reversal_tables", "forecast_table", "truth_table", "cycles_table",
+           "skipped_table", "store_table", "versions_table", "calibration_rows_table", "assemble_page"]
+
+#: the cautions shown at the top of every report
+CAUTION_TEXTS = (
+    "The next-cycle amplitude is a statistical forecast calibrated on few solar cycles; its intervals "
+    "assume that the calibration cycles are representative of the coming one.",
+    "Defer to official space-weather forecasts and to mission rules for any operational decision.",
+)
+
+_POLES = ("north", "south", "dipole")
+
+
+def _f(v, spec=".3f"):
+    return format_number(v, spec)
+
+
+def reversal_tables(reversals: dict | None) -> str:
+    """One table per series (north, south, dipole): every crossing with its interval, the final one marked."""
+    if not reversals:
+        return note_html("no reversal product")
+    parts = []
+    for pole in _POLES:
+        res = reversals.get(pole)
+        if not isinstance(res, dict):
+            parts.append(f"<h3>{pole}</h3>" + note_html("not available"))
+            continue
+        final = res.get("final") or {}
+        rows, classes = [], []
+        for i, c in enumerate(res.get("crossings") or [], start=1):
+            is_final = bool(final) and c.get("time") == final.get("time")
+            lo, hi = c.get("low"), c.get("high")
+            width = None if lo is None or hi is None else hi - lo
+            sign = c.get("sign_after")
+            rows.append([i, c.get("time_iso"), _f(c.get("time")), _f(lo), _f(hi), _f(width),
+                         {1: "+ (outward)", -1: "\u2212 (inward)"}.get(sign, sign),
+                         "final" if is_final else ""])
+            classes.append("final" if is_final else "")
+        title = {"dipole": "axial dipole (N \u2212 S)/2"}.get(pole, f"{pole} pole")
+        parts.append(f"<h3>{title}</h3>")
+        if rows:
+            parts.append(table_html(["#", "epoch", "time (yr)", "low (yr)", "high (yr)", "width (yr)",
+                                     "sign after", ""], rows, numeric={0, 2, 3, 4, 5}, row_classes=classes))
+        else:
+            parts.append(note_html("no persistent sign change in the data"))
+    bands = reversals.get("bands")
+    if isinstance(bands, dict) and bands:
+        rows = []
+        for pole, by_boundary in bands.items():
+            for boundary, res in (by_boundary or {}).items():
+                fin = (res or {}).get("final") or {}
+                rows.append([pole, boundary, len((res or {}).get("crossings") or []), fin.get("time_iso"),
+                             _f(fin.get("time")), _f(fin.get("low")), _f(fin.get("high"))])
+        parts.append("<h3>Final reversal by cap boundary</h3>")
+        parts.append(table_html(["pole", "|lat| \u2265 (deg)", "crossings", "final epoch", "time (yr)", "low (yr)",
+                                 "high (yr)"], rows, numeric={1, 2, 4, 5, 6}))
+    return "\n".join(parts)
+
+
+def forecast_table(forecast: dict | None) -> str:
+    """The forecast: amplitude, intervals, method, cycles, r, leave-one-out RMSE, precursor and warnings."""
+    if not forecast:
+        return note_html("no forecast product (forecast.json): the forecast is left out")
+    i68 = forecast.get("interval_68") or [None, None]
+    i95 = forecast.get("interval_95") or [None, None]
+    pe = forecast.get("precursor_error")
+    cal = forecast.get("calibrated_range") or [None, None]
+    rows = [
+        ["next-cycle amplitude (13-month smoothed sunspot number)", _f(forecast.get("amplitude"), ".1f")],
+        ["68% prediction interval", f"{_f(i68[0], '.1f')} \u2013 {_f(i68[1], '.1f')}"],
+        ["95% prediction interval", f"{_f(i95[0], '.1f')} \u2013 {_f(i95[1], '.1f')}"],
+        ["method", forecast.get("method")],
+        ["calibration cycles (n_cycles)", forecast.get("n_cycles")],
+        ["Pearson r of the calibration", _f(forecast.get("r"), ".3f")],
+        ["leave-one-out RMSE (sunspot number)", _f(forecast.get("loo_rmse"), ".1f")],
+        ["precursor (G)", _f(forecast.get("precursor"), ".4g") + ("" if pe is None else f" \u00b1 {_f(pe, '.2g')}")],
+        ["calibrated precursor range (G)", f"{_f(cal[0], '.4g')} \u2013 {_f(cal[1], '.4g')}"],
+        ["newest data used", forecast.get("data_date")],
+        ["precursor source", forecast.get("precursor_source")],
+    ]
+    warnings = forecast.get("warnings") or []
+    rows.append(["warnings", "; ".join(map(str, warnings)) if warnings else "none"])
+    out = table_html(["quantity", "value"], rows)
+    if forecast.get("cautions"):
+        out += note_html(f"Caution (from the forecast): {forecast['cautions']}")
+    return out
+
+
+def truth_table(summary: dict | None, reversals: dict | None, forecast: dict | None) -> str:
+    """Truth of the synthetic star against what the pipeline recovered (demo only), or ''."""
+    truth = (summary or {}).get("truth")
+    if not isinstance(truth, dict):
+        return ""
+    rows = []
+    for pole in ("north", "south"):
+        t = (truth.get("reversals") or {}).get(pole)
+        fin = ((reversals or {}).get(pole) or {}).get("final") or {}
+        got = fin.get("time")
+        diff = None if t is None or got is None else got - t
+        inside = None
+        if t is not None and fin.get("low") is not None and fin.get("high") is not None:
+            inside = "yes" if fin["low"] <= t <= fin["high"] else "no"
+        rows.append([f"final {pole} reversal (yr)", _f(t), _f(got),
+                     f"{_f(fin.get('low'))} \u2013 {_f(fin.get('high'))}", _f(diff), inside])
+    amp = truth.get("next_amplitude")
+    f = forecast or {}
+    i95 = f.get("interval_95") or [None, None]
+    got = f.get("amplitude")
+    inside = None
+    if amp is not None and None not in i95:
+        inside = "yes" if i95[0] <= amp <= i95[1] else "no"
+    rows.append(["next-cycle amplitude", _f(amp, ".1f"), _f(got, ".1f"),
+                 f"{_f(i95[0], '.1f')} \u2013 {_f(i95[1], '.1f')} (95%)",
+                 _f(None if amp is None or got is None else got - amp, ".1f"), inside])
+    return table_html(["quantity", "truth", "recovered", "interval", "recovered \u2212 truth", "truth inside?"],
+                      rows, numeric={1, 2, 4})
+
+
+def cycles_table(cycles: dict | None) -> str:
+    """Cycle minima and maxima of the ``polecast cycles`` object."""
+    if not cycles:
+        return note_html("no cycles product (cycles.json): cycle minima and maxima are not marked")
+    rows = [[i, _f(c.get("minimum_time")), _f(c.get("minimum_value"), ".1f"), _f(c.get("maximum_time")),
+             _f(c.get("maximum_value"), ".1f")] for i, c in enumerate(cycles.get("cycles") or [], start=1)]
+    if not rows:
+        return note_html("no cycle minimum in the sunspot series")
+    return table_html(["#", "minimum (yr)", "minimum value", "maximum (yr)", "maximum value"], rows,
+                      numeric={0, 1, 2, 3, 4})
+
+
+def calibration_rows_table(table) -> str:
+    """The calibration cycles used."""
+    if table is None:
+        return note_html("no calibration product (calibration.csv): the calibration figure is left out")
+    has_err = table.precursor_error is not None
+    rows = []
+    for i, name in enumerate(table.cycle):
+        row = [name, _f(float(table.precursor[i]), ".4g"), _f(float(table.amplitude[i]), ".1f")]
+        if has_err:
+            row += [_f(float(table.precursor_error[i]), ".3g"), _f(float(table.amplitude_error[i]), ".3g")]
+        rows.append(row)
+    headers = ["cycle", "precursor (G)", "amplitude"] + (["precursor error (G)", "amplitude error"] if has_err else [])
+    return table_html(headers, rows, numeric=set(range(1, len(headers))))
+
+
+def skipped_table(skipped: list, max_rows: int) -> str:
+    """Every skipped file with its one-line reason (escaped), up to ``max_rows``."""
+    if not skipped:
+        return note_html("no skipped file")
+    rows = [[path, reason] for path, reason in skipped[:max_rows]]
+    out = table_html(["file", "reason"], rows)
+    if len(skipped) > max_rows:
+        out += note_html(f"{len(skipped) - max_rows} more skipped files not listed (report.max_table_rows = "
+                         f"{max_rows})")
+    return out
+
+
+def store_table(summary: dict) -> str:
+    """Counts and ranges of the store."""
+    rows = [["store", summary.get("store")], ["measured frames (ok)", summary.get("ok")],
+            ["skipped files", summary.get("skipped")], ["first frame", summary.get("first_time")],
+            ["last frame", summary.get("last_time")], ["superseded contents", summary.get("superseded")],
+            ["measure configurations", ", ".join(f"{k}: {v}" for k, v in (summary.get("configs") or {}).items())],
+            ["polecast versions that measured", ", ".join(f"{k}: {v}" for k, v in
+                                                         (summary.get("versions") or {}).items())]]
+    return table_html(["", ""], rows)
+
+
+def versions_table(versions: dict) -> str:
+    return table_html(["package", "version"], [[k, v] for k, v in versions.items()])
+
+
+def _figure_or_note(figures: dict, key: str, caption: str, alt: str, missing: str) -> str:
+    if key in figures:
+        return figure_html(figures[key], caption, alt)
+    return note_html(missing)
+
+
+def _number_of(x):
+    return x if isinstance(x, (int, float)) and not (isinstance(x, float) and not math.isfinite(x)) else None
+
+
+def assemble_page(*, settings, store_path: str, products_dir: str | None, products, store_summary: dict,
+                  skipped: list, figures: dict, config_dict: dict, versions: dict, generated_utc: str) -> str:
+    """The whole page from the products, the store's summary and skipped files, and the drawn figures."""
+    fc = products.forecast or {}
+    headline = []
+    if _number_of(fc.get("amplitude")) is not None:
+        i95 = fc.get("interval_95") or [None, None]
+        headline.append(f"Next-cycle amplitude {_f(fc['amplitude'], '.0f')} (95%: {_f(i95[0], '.0f')} \u2013 "
+                        f"{_f(i95[1], '.0f')}).")
+    for pole in ("north", "south"):
+        fin = ((products.reversals or {}).get(pole) or {}).get("final")
+        if fin:
+            headline.append(f"Final {pole} reversal {fin.get('time_iso')} ({_f(fin.get('low'))} \u2013 "
+                            f"{_f(fin.get('high'))}).")
+    sections = []
+    summary_body = ("<p>" + " ".join(map(_esc_text, headline)) + "</p>") if headline else note_html(
+        "no forecast or final reversal yet")
+    truth = truth_table(products.summary, products.reversals, products.forecast)
+    if truth:
+        summary_body += "<h3>Demo: truth of the synthetic star against what was recovered</h3>" + truth
+    if products.notes:
+        summary_body += "<h3>Notes on the products</h3><ul>" + "".join(
+            f"<li>{_esc_text(n)}</li>" for n in products.notes) + "</ul>"
+    sections.append(("summary", "Summary", summary_body))
+    sections.append(("series", "Polar-field series and reversals",
+                     figure_html(figures["series"], "North and south polar-cap mean Br and the axial dipole "
+                                 "(N \u2212 S)/2 per Carrington rotation with one-sigma error bars and the smoothed "
+                                 "curves; shaded spans are the reversal intervals, heavy lines the final reversals, "
+                                 "dashed/dash-dot lines the cycle minima/maxima.", "polar-field series")
+                     + reversal_tables(products.reversals)))
+    sections.append(("latitude-time", "Latitude-time diagram",
+                     figure_html(figures["latitude_time"], "Longitude-averaged radial field per latitude bin and "
+                                 "rotation (gauss, colour scale symmetric about zero); dashed lines mark the polar-cap "
+                                 "boundary.", "latitude-time diagram")))
+    sections.append(("forecast", "Forecast",
+                     forecast_table(products.forecast)
+                     + _figure_or_note(figures, "calibration", "Calibration cycles (precursor against next-cycle "
+                                       "amplitude), the fitted line with its 68% and 95% prediction bands, and this "
+                                       "cycle's forecast with its 68% (thick) and 95% (thin) intervals.",
+                                       "calibration", "calibration figure left out (no calibration.csv)")
+                     + "<h3>Calibration cycles</h3>" + calibration_rows_table(products.calibration)
+                     + "<h3>Cycle minima and maxima</h3>" + cycles_table(products.cycles)))
+    sections.append(("history", "Forecast history",
+                     _figure_or_note(figures, "history", "The forecast amplitude at each update against the date "
+                                     "of the newest data used, with its 68% and 95% intervals.", "forecast history",
+                                     "no forecast history (forecast_history.jsonl missing or empty)")))
+    sections.append(("diagnostics", "Diagnostics",
+                     figure_html(figures["diagnostics"], "B0 angle and polar-cap coverage per frame; skipped files "
+                                 "grouped by reason.", "diagnostics")
+                     + "<h3>Store</h3>" + store_table(store_summary)
+                     + f"<h3>Skipped files ({len(skipped)})</h3>" + skipped_table(skipped, settings.max_table_rows)))
+    sections.append(("provenance", "Configuration and versions",
+                     "<h3>Versions</h3>" + versions_table(versions)
+                     + "<h3>Configuration used</h3>" + json_block(config_dict)))
+    meta = (f"Generated {generated_utc} by polecast {versions.get('polecast')} from store {store_path}"
+            + (f" and products {products_dir}" if products_dir else "") + ".")
+    return page_html(settings.title, meta, list(CAUTION_TEXTS), sections)
+
+
+def _esc_text(text: str) -> str:
+    from pipeline.report.html import esc
+
+    return esc(text)

@@ -1,0 +1,116 @@
+"""Test helper: a small store with a polarity reversal, skipped files (one with a hostile name) and products."""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+
+import numpy as np
+
+from pipeline.batch import scan_paths
+from pipeline.measure import measure_file
+from pipeline.store import MeasuredFile, file_digest, open_store
+from tests._frames import make_observer, write_frame
+
+#: a path component that would run as script if the page did not escape it
+HOSTILE_NAME = "<script>alert(1)</script>.fits"
+START_YR = 2031.0
+STEP_YR = 0.09            # about 1.2 Carrington rotations between frames
+N_FRAMES = 28
+NORTH_REVERSAL_YR = 2032.2   # the synthetic north field changes sign here
+SOUTH_REVERSAL_YR = 2032.5
+
+
+def _date(year: float) -> str:
+    from pipeline.timeutil import from_decimal_year, iso_time
+
+    return iso_time(from_decimal_year(year)).rstrip("Z")
+
+
+def _field(year: float):
+    """``Br = B(t) sin^8(lat)`` per hemisphere; north changes sign at NORTH_REVERSAL_YR, south at SOUTH_..."""
+    bn = -6.0 * math.tanh((year - NORTH_REVERSAL_YR) / 0.3)
+    bs = 6.0 * math.tanh((year - SOUTH_REVERSAL_YR) / 0.3)
+
+    def br(lat, lon):
+        s = np.sin(np.deg2rad(lat))
+        return np.where(lat >= 0, bn, bs) * s ** 8
+    return br
+
+
+def write_archive(root):
+    """N_FRAMES good 64-px frames over ~2.5 years, plus an empty file and a text file under a hostile path."""
+    root.mkdir(parents=True, exist_ok=True)
+    for k in range(N_FRAMES):
+        year = START_YR + STEP_YR * k
+        obs = make_observer(b0_deg=7.25 * math.sin(2 * math.pi * (year - 2031.43)), crln_deg=(47.0 * k) % 360.0)
+        write_frame(root / f"kvm_{k:03d}.fits", _field(year), observer=obs, size=64, date_obs=_date(year),
+                    bscale=0.01)
+    hostile = root / HOSTILE_NAME       # a directory "<script>alert(1)<" holding "script>.fits"
+    hostile.parent.mkdir(parents=True, exist_ok=True)
+    hostile.write_text("<b>not FITS</b> & certainly not a magnetogram\n" * 20)
+    (root / "empty.fits").write_bytes(b"")
+    return root
+
+
+def build_store(tmp_path):
+    """Measure the archive in this process and record it in ``tmp_path/store.polecast``; the store path.
+
+    The same route as :func:`pipeline.batch.ingest` (scan, digest, measure, ``Store.add``) without a
+    process pool, which keeps the fixture quick.
+    """
+    from pipeline.config import MeasureSettings
+
+    archive = write_archive(tmp_path / "archive")
+    store = tmp_path / "store.polecast"
+    settings = MeasureSettings()
+    results = []
+    for path in scan_paths([str(archive)]):
+        st = os.stat(path)
+        rec = measure_file(path, settings)
+        results.append(MeasuredFile(path, st.st_size, st.st_mtime_ns, file_digest(path), rec.to_dict()))
+    with open_store(store, "a") as st:
+        st.add(results, st.register_config(settings))
+    return store
+
+
+def write_products(products, store):
+    """Products like `polecast run` writes: series, diagram, reversals, cycles, forecast, history, calibration."""
+    from pipeline.aggregator import latitude_time_diagram, polar_series
+    from pipeline.cli.series import write_netcdf
+    from pipeline.config import load_config
+    from pipeline.history import append_history, history_entry
+    from pipeline.regression import forecast_amplitude, read_calibration_csv
+    from pipeline.reversal import series_reversals
+
+    products.mkdir(parents=True, exist_ok=True)
+    config = load_config(None)
+    with open_store(store) as st:
+        records = list(st.iter_records())
+    ds = polar_series(records, config.series)
+    write_netcdf(ds, products / "series.nc")
+    latitude_time_diagram(records, config.series).to_netcdf(products / "latitude_time.nc")
+    quick = dataclasses.replace(config.reversals, n_bootstrap=60)
+    rev = {k: v.to_dict() for k, v in series_reversals(ds, quick).items()}
+    (products / "reversals.json").write_text(json.dumps(rev))
+    cycles = {"cycles": [{"minimum_time": 2031.3, "minimum_value": 4.0, "maximum_time": 2032.4,
+                          "maximum_value": 120.0}]}
+    (products / "cycles.json").write_text(json.dumps(cycles))
+    # invented calibration cycles of the synthetic star (demo data only)
+    (products / "calibration.csv").write_text(
+        "cycle,precursor,amplitude\nT1,1.1,82\nT2,1.6,121\nT3,0.9,70\nT4,2.0,150\nT5,1.4,99\nT6,1.8,131\n")
+    table = read_calibration_csv(products / "calibration.csv")
+    fc = forecast_amplitude(table, 1.5, config.forecast, precursor_error=0.1).to_dict()
+    fc["data_date"] = "2033-06-01"
+    (products / "forecast.json").write_text(json.dumps(fc))
+    for k, (date, x) in enumerate((("2033-04-01", 1.3), ("2033-05-01", 1.45), ("2033-06-01", 1.5))):
+        f = forecast_amplitude(table, x, config.forecast).to_dict()
+        append_history(products / "forecast_history.jsonl", history_entry(f, date, calibration="calibration.csv"))
+    (products / "config.json").write_text(json.dumps(config.to_dict(), default=list))
+    summary = {"reversals": rev, "forecast": fc,
+               "truth": {"reversals": {"north": NORTH_REVERSAL_YR, "south": SOUTH_REVERSAL_YR},
+                         "next_amplitude": 112.0}}
+    (products / "summary.json").write_text(json.dumps(summary))
+    return products
