@@ -23,7 +23,7 @@ EXIT_OK, EXIT_SKIPPED, EXIT_USAGE = 0, 1, 2
 
 #: sub-command modules, in the order of the data flow
 COMMANDS = ("measure", "synth", "ingest", "export", "series", "reversals", "cycles", "forecast",
-            "run")
+            "run", "report")
 
 
 def build_parser() -> argparse.ArgumentParser:
