@@ -10,23 +10,15 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import math
 import os
 from pathlib import Path
+from pipeline.jsonio import finite_or_none
 
 __all__ = ["HISTORY_KEYS", "history_entry", "append_history", "read_history"]
 
 #: keys of every history entry, in order
 HISTORY_KEYS = ("data_date", "written_utc", "precursor", "precursor_error", "amplitude", "interval_68",
                 "interval_95", "method", "n_cycles", "r", "loo_rmse", "calibration", "precursor_source")
-
-
-def _clean(value):
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    return value
 
 
 def history_entry(forecast: dict, data_date: str, *, calibration: str | None = None,
@@ -68,7 +60,7 @@ def history_entry(forecast: dict, data_date: str, *, calibration: str | None = N
         "calibration": calibration,
         "precursor_source": precursor_source,
     }
-    return {k: _clean(v) for k, v in entry.items()}
+    return {k: finite_or_none(v) for k, v in entry.items()}
 
 
 def append_history(path: str | Path, entry: dict) -> None:

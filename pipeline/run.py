@@ -24,12 +24,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-from pipeline.config import ConfigError, check_number
+from pipeline.config import ConfigError
+from pipeline.jsonio import finite_or_none, write_json
 
 __all__ = ["RunSettings", "RunResult", "run_pipeline", "CAUTIONS", "find_demo_data"]
 
@@ -115,20 +115,6 @@ class RunResult:
     products_dir: Path
     report: Path | None
     messages: list
-
-
-def _dump(path: Path, obj) -> None:
-    path.write_text(json.dumps(_clean(obj), indent=1) + "\n", encoding="utf-8")
-
-
-def _clean(value):
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    return value
 
 
 def _require(path: str, key: str) -> Path:
@@ -225,12 +211,12 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     reversals = {k: v.to_dict() for k, v in series_reversals(series, config.reversals, smoother).items()}
     bands = band_reversals(band_cap_means(diagram), config.reversals, smoother)
     reversals["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
-    _dump(out / "reversals.json", reversals)
+    write_json(out / "reversals.json", reversals)
 
     # 4. cycle landmarks
     cycles_doc = landmarks_document(read_monthly_csv(sunspots), config.cycles)
     cycles = cycles_doc["cycles"]
-    _dump(out / "cycles.json", cycles_doc)
+    write_json(out / "cycles.json", cycles_doc)
 
     # 5. precursor and forecast
     table = read_calibration_csv(calibration)
@@ -245,8 +231,8 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     forecast["warnings"] = list(forecast.get("warnings", [])) + list(item.get("notes", []) or [])
     forecast.update(data_date=item["data_date"], precursor_source="store", precursor_detail=item,
                     skipped_rows=list(table.problems))
-    forecast = _clean(forecast)
-    _dump(out / "forecast.json", forecast)
+    forecast = finite_or_none(forecast)
+    write_json(out / "forecast.json", forecast)
     shutil.copyfile(calibration, out / "calibration.csv")
 
     # 6. history: one entry per new data date, never rewritten
@@ -258,7 +244,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
         appended = True
 
     # 7. summary (+ truth for a synthetic archive) and the report
-    _dump(out / "config.json", config.to_dict())
+    write_json(out / "config.json", config.to_dict())
     summ = {
         "reversals": {k: reversals[k] for k in ("north", "south", "dipole")},
         "forecast": forecast,
@@ -272,13 +258,13 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     truth = _truth_summary(rs.truth)
     if truth is not None:
         summ["truth"] = truth
-    _dump(out / "summary.json", summ)
+    write_json(out / "summary.json", summ)
     report = None
     if rs.report:
         from pipeline.report import build_report
 
         report = build_report(rs.store, out / "report", products_dir=out, settings=config.report)
-    return RunResult(summary.exit_code, summary.line(), _clean(summ), out, report, messages)
+    return RunResult(summary.exit_code, summary.line(), finite_or_none(summ), out, report, messages)
 
 
 def find_demo_data(explicit: str | None = None) -> Path:
@@ -293,6 +279,3 @@ def find_demo_data(explicit: str | None = None) -> Path:
     raise ConfigError("demo data not found: run from a clone of polecast (it holds demo_fits/), "
                       "or pass --data DIR / set POLECAST_DEMO_DATA")
 
-
-def check_positive(name, value):  # pragma: no cover - kept for symmetry with other stages
-    return check_number(name, value, lo=0.0, lo_open=True)

@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import math
 import sys
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
+from pipeline.jsonio import finite_or_none
 
 __all__ = ["add_parser", "run", "precursor_from_store", "write_text"]
 
@@ -44,16 +44,6 @@ def add_parser(sub) -> None:
     p.add_argument("--format", choices=("json", "text"), default="json", help="output format (default json)")
     p.add_argument("--config", metavar="PATH", help="TOML configuration file")
     p.set_defaults(func=run)
-
-
-def _clean(value):
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    return value
 
 
 def precursor_from_store(store_path, sunspots_path, settings, config=None) -> dict:
@@ -154,7 +144,7 @@ def run(args) -> int:
     doc["precursor_source"] = source
     doc["skipped_rows"] = list(table.problems)
     doc.update(extra)
-    doc = _clean(doc)
+    doc = finite_or_none(doc)
     for w in doc["warnings"]:
         print(f"{prog}: warning: {w}", file=sys.stderr)
     if args.history is not None:

@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import csv
 import json
-import math
 import sys
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED
 from pipeline.config import load_config
+from pipeline.jsonio import finite_or_none
 from pipeline.measure import JSON_KEYS, measure_file
 
 __all__ = ["add_parser", "run", "write_records"]
@@ -27,15 +27,9 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def _clean(value):
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
 def write_records(records, fmt: str, stream=sys.stdout) -> None:
     """Print records as one JSON array or as CSV with a header line."""
-    rows = [{k: _clean(v) for k, v in r.to_json().items()} for r in records]
+    rows = [{k: finite_or_none(v) for k, v in r.to_json().items()} for r in records]
     if fmt == "json":
         json.dump(rows, stream, indent=1)
         stream.write("\n")
