@@ -5,8 +5,10 @@ from __future__ import annotations
 import base64
 import html
 import json
+import re
 import shutil
 import struct
+import subprocess
 from html.parser import HTMLParser
 
 import pytest
@@ -197,3 +199,94 @@ def test_cli_report_prints_the_page_and_exit_codes(built, tmp_path, capsys):
 def test_settings_validation_names_the_key(kw, key):
     with pytest.raises(ConfigError, match=key):
         ReportSettings(**kw)
+
+# -- headless Chromium ------------------------------------------------------------------------------
+# The report page in headless Chromium: it renders, every image loads, no console error, no script runs.
+#
+# A copy of the page gets a small checker script at the top of ``<head>`` (the
+# copy's Content-Security-Policy allows inline scripts; the real page forbids
+# all scripts).  On ``load`` the checker writes into the DOM how many images
+# there are, how many failed (an image has loaded when ``complete &&
+# naturalWidth > 0``, HTML Living Standard, "img" element), every error event,
+# every CSP violation and any call of ``alert``; Chromium's ``--dump-dom``
+# prints the DOM after load.  Console messages on stderr
+# (``--enable-logging=stderr``) are scanned too.  Two negative controls show
+# the checker catches a broken image and a name that was not escaped.
+
+_CANDIDATES = ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable", "headless_shell")
+CHROMIUM = next((p for p in map(shutil.which, _CANDIDATES) if p), None)
+
+needs_chromium = pytest.mark.skipif(CHROMIUM is None, reason="no chromium binary on PATH (Debian package 'chromium'; "
+                                                         ".ci/run installs it)")
+
+_CHECKER = """<script>
+window.__problems = [];
+window.alert = function (m) { window.__problems.push('alert called: ' + m); };
+window.addEventListener('error', function (e) {
+  var t = e.target;
+  window.__problems.push(t && t.tagName ? 'resource failed: ' + t.tagName : 'error: ' + e.message);
+}, true);
+document.addEventListener('securitypolicyviolation', function (e) {
+  window.__problems.push('csp violation: ' + e.violatedDirective);
+});
+(function () {
+  var orig = console.error;
+  console.error = function () { window.__problems.push('console.error: ' + Array.prototype.join.call(arguments, ' ')); };
+})();
+window.addEventListener('load', function () {
+  var imgs = Array.prototype.slice.call(document.images);
+  var broken = imgs.filter(function (i) { return !(i.complete && i.naturalWidth > 0); }).length;
+  var d = document.createElement('pre');
+  d.id = 'polecast-check';
+  d.textContent = 'CHECK images=' + imgs.length + ' broken=' + broken + ' problems=' +
+                  window.__problems.length + ' :: ' + window.__problems.join(' | ');
+  document.body.appendChild(d);
+});
+</script>"""
+
+_MARK = re.compile(r"CHECK images=(\d+) broken=(\d+) problems=(\d+) :: ([^<]*)")
+
+
+def _instrumented(page: str) -> str:
+    page = page.replace("script-src 'none'", "script-src 'unsafe-inline'")
+    return page.replace("<meta charset=\"utf-8\">", "<meta charset=\"utf-8\">\n" + _CHECKER, 1)
+
+
+def _open_in_chromium(path, profile) -> tuple[dict, list]:
+    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync",
+           f"--user-data-dir={profile}", "--enable-logging=stderr", "--v=0", "--virtual-time-budget=10000",
+           "--dump-dom", path.resolve().as_uri()]
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=180)
+    m = _MARK.search(proc.stdout)
+    assert m, f"the checker did not report (exit {proc.returncode}); stderr tail: {proc.stderr[-800:]}"
+    # the page itself has no script, and the checker logs nothing: any console message is a problem
+    console = [ln for ln in proc.stderr.splitlines() if ":CONSOLE" in ln]
+    return ({"images": int(m.group(1)), "broken": int(m.group(2)), "problems": int(m.group(3)),
+             "detail": m.group(4)}, console)
+
+
+@needs_chromium
+def test_report_renders_in_chromium_with_every_image_and_no_console_error(built, tmp_path):
+    page = built["index"]
+    probe = page.with_name("probe.html")
+    probe.write_text(_instrumented(page.read_text(encoding="utf-8")), encoding="utf-8")
+    result, console = _open_in_chromium(probe, tmp_path / "profile")
+    assert result["images"] == len(FIGURE_FILES)
+    assert result["broken"] == 0, result
+    assert result["problems"] == 0, result["detail"]
+    assert console == []
+
+
+@needs_chromium
+def test_chromium_checker_catches_a_broken_image_and_an_unescaped_name(built, tmp_path):
+    page = built["index"]
+    # negative control: the same page with one image's data corrupted and the hostile name left raw
+    text = _instrumented(page.read_text(encoding="utf-8"))
+    text = text.replace("data:image/png;base64,", "data:image/png;base64,AAAA", 1)
+    text = text.replace("&lt;script&gt;alert(1)&lt;/script&gt;", "<script>alert(1)</script>", 1)
+    probe = tmp_path / "broken.html"
+    probe.write_text(text, encoding="utf-8")
+    result, _ = _open_in_chromium(probe, tmp_path / "profile")
+    assert result["broken"] == 1
+    assert "alert called" in result["detail"]
