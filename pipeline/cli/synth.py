@@ -6,7 +6,7 @@ import sys
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 
-__all__ = ["add_parser", "run"]
+__all__ = ["add_parser", "run", "settings_from_args"]
 
 
 def add_parser(sub) -> None:
@@ -32,13 +32,20 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
+def settings_from_args(args):
+    """The :class:`pipeline.synth.archive.ArchiveSettings` of parsed ``polecast synth`` arguments."""
+    from pipeline.synth.archive import ArchiveSettings
+
+    return ArchiveSettings(start=args.start, end=args.end, cadence_days=args.cadence, size=args.size,
+                           seed=args.seed, rotation_deg=args.rotation, offset_pixels=tuple(args.offset),
+                           noise_gauss=args.noise, network_gauss=args.network, regions=not args.no_regions)
+
+
 def run(args) -> int:
-    from pipeline.synth.archive import ArchiveSettings, write_archive
+    from pipeline.synth.archive import write_archive
 
     try:
-        settings = ArchiveSettings(start=args.start, end=args.end, cadence_days=args.cadence, size=args.size,
-                                   seed=args.seed, rotation_deg=args.rotation, offset_pixels=tuple(args.offset),
-                                   noise_gauss=args.noise, network_gauss=args.network, regions=not args.no_regions)
+        settings = settings_from_args(args)
     except ValueError as exc:
         print(f"polecast synth: {exc}", file=sys.stderr)
         return EXIT_USAGE
