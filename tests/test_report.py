@@ -290,3 +290,16 @@ def test_chromium_checker_catches_a_broken_image_and_an_unescaped_name(built, tm
     result, _ = _open_in_chromium(probe, tmp_path / "profile")
     assert result["broken"] == 1
     assert "alert called" in result["detail"]
+
+
+def test_history_named_by_the_run_configuration_is_found(built, tmp_path):
+    products = tmp_path / "p"
+    shutil.copytree(built["products"], products)
+    elsewhere = tmp_path / "history" / "kvm_forecasts.jsonl"
+    elsewhere.parent.mkdir()
+    shutil.move(products / "forecast_history.jsonl", elsewhere)
+    cfg = json.loads((products / "config.json").read_text())
+    cfg.setdefault("run", {})["history"] = str(elsewhere)
+    (products / "config.json").write_text(json.dumps(cfg))
+    loaded = load_products(products)
+    assert [e["data_date"] for e in loaded.history] == ["2033-04-01", "2033-05-01", "2033-06-01"]

@@ -136,6 +136,18 @@ def _load_one(key: str, path: Path, notes: list):
     return obj
 
 
+def _history_elsewhere(root: Path) -> Path | None:
+    """The history file named by ``run.history`` of the products' ``config.json``, when it is elsewhere."""
+    try:
+        name = (_read_json(root / PRODUCT_FILES["config"]).get("run") or {}).get("history")
+    except (OSError, ValueError, AttributeError):
+        return None
+    if not name:
+        return None
+    path = Path(name)
+    return path if path.is_absolute() else root / path
+
+
 def load_products(products_dir) -> Products:
     """Read every product of :data:`PRODUCT_FILES` that exists; a one-line note for each missing or bad one.
 
@@ -159,6 +171,8 @@ def load_products(products_dir) -> Products:
         return out
     for key, name in PRODUCT_FILES.items():
         path = root / name
+        if key == "history" and not path.is_file():
+            path = _history_elsewhere(root) or path
         if not path.is_file():
             out.notes.append(f"{name}: not in the products directory")
             continue

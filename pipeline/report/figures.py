@@ -222,13 +222,12 @@ def latitude_time_figure(diagram, out_path, settings, *, cap_latitude_deg: float
         bar = fig.colorbar(mesh, ax=ax, pad=0.01)
         bar.set_label("longitude-averaged Br (G)")
         for sign in (1, -1):
-            ax.axhline(sign * cap_latitude_deg, color="k", linestyle="--", linewidth=1.0,
-                       label=f"cap boundary |lat| = {cap_latitude_deg:g} deg" if sign > 0 else None)
+            ax.axhline(sign * cap_latitude_deg, color="k", linestyle="--", linewidth=1.0)
         ax.set_ylim(lat_edges.min(), lat_edges.max())
-        ax.legend(fontsize="x-small", loc="center right", framealpha=0.85)
     ax.set_xlabel("time (decimal year, UTC)")
     ax.set_ylabel("heliographic latitude (deg)")
-    ax.set_title("Longitude-averaged radial field per Carrington rotation", fontsize="small")
+    ax.set_title("Longitude-averaged radial field per Carrington rotation; dashed: polar-cap boundary "
+                 f"|latitude| = {cap_latitude_deg:g} deg", fontsize="small")
     return _save(fig, out_path, settings)
 
 
