@@ -5,8 +5,10 @@ Files written into the output directory:
 ``kvm_YYYYMMDD_HHMMSS.fits``
     Line-of-sight magnetograms (scaled int32 with BLANK, RICE tile-compressed).
 ``truth.json``
-    Star, instrument, seed, span, reversal epochs, cycle landmarks, the last
-    minimum's precursor and the next cycle's amplitude, generator arguments.
+    Star, instrument, seed, span, reversal epochs, cycle landmarks (a minimum
+    or maximum outside the span is null), the last minimum's precursor and the
+    next cycle's amplitude (known to the star even after the span), generator
+    arguments.
 ``truth_caps.csv``
     ``time, decimal_year, north_br_gauss, south_br_gauss, dipole_br_gauss``:
     true whole-cap means (every transport step, 5 days by default).
@@ -30,16 +32,14 @@ from __future__ import annotations
 
 import csv
 import json
-import os
-import sys
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from pipeline.projection import Observer
+from pipeline.projection import Observer, Window, surface_points
 from pipeline.synth.instrument import (INSTRUMENT, OBSERVATORY, ObservingSetup, earth_observers, frame_header,
-                                       geometry_for, instrument_noise, render_los, write_magnetogram)
+                                       geometry_for, instrument_noise, write_magnetogram)
 from pipeline.synth.star import StarHistory, StarParameters, datetime64_to_days, star_history
 from pipeline.synth.surface import SurfaceOptions, surface_field
 from pipeline.synth.truth import (calibration_rows, cycle_landmarks_truth, pearson_r, precursor_gauss,
@@ -152,6 +152,21 @@ def _frame_rng(seed: int, t) -> np.random.Generator:
     return np.random.default_rng(np.random.SeedSequence([int(seed), 4, secs & 0xFFFFFFFF, (secs >> 32) & 0xFFFFFFFF]))
 
 
+def _render_los(br, geometry, observer) -> np.ndarray:
+    """:func:`pipeline.synth.instrument.render_los` without the limb-area refinement it does not use.
+
+    ``mu_floor`` above 1 tells :func:`pipeline.projection.surface_points` to skip the
+    sub-pixel limb areas (rendering needs latitude, longitude and mu only); the
+    image is identical.
+    """
+    ny, nx = geometry.shape
+    s = surface_points(geometry, observer, Window(0, ny, 0, nx), mu_floor=2.0)
+    out = np.full((ny, nx), np.nan)
+    on = s.on_disk
+    out[on] = br(s.latitude_deg[on], s.carrington_longitude_deg[on]) * s.mu[on]
+    return out
+
+
 def render_frame(history: StarHistory, t, observer: Observer, settings: ArchiveSettings):
     """Line-of-sight image (gauss, NaN off disk), its geometry and the visible-cap truth.
 
@@ -168,7 +183,7 @@ def render_frame(history: StarHistory, t, observer: Observer, settings: ArchiveS
     t_days = datetime64_to_days(np.datetime64(t, "ns"))
     opts = SurfaceOptions(regions=settings.regions, network_gauss=settings.network_gauss)
     br = surface_field(history, t_days, opts)
-    blos = render_los(br, geometry, observer)
+    blos = _render_los(br, geometry, observer)
     on = np.isfinite(blos)
     blos[on] += instrument_noise(int(on.sum()), settings.noise_gauss, _frame_rng(history.seed, t),
                                  "gaussian" if settings.noise_gauss > 0 else "none")
@@ -205,9 +220,15 @@ def truth_summary(history: StarHistory, settings: ArchiveSettings, cap_latitude_
         rev[pole] = sign_changes_yr(ty[in_span], series[in_span])
         final[pole] = rev[pole][-1] if rev[pole] else None
     landmarks = cycle_landmarks_truth(history)
-    cycles = [lm for lm in landmarks if (y0 <= lm["minimum_time"] <= y1) or (y0 <= lm["maximum_time"] <= y1)]
+    cycles = [dict(lm) for lm in landmarks
+              if (y0 <= lm["minimum_time"] <= y1) or (y0 <= lm["maximum_time"] <= y1)]
+    for lm in cycles:  # landmarks outside the span are unknown to an observer of the span
+        for kind in ("minimum", "maximum"):
+            if not (y0 <= lm[f"{kind}_time"] <= y1):
+                lm[f"{kind}_time"] = lm[f"{kind}_value"] = None
     minima = [lm for lm in landmarks if y0 <= lm["minimum_time"] <= y1]
     last = minima[-1] if minima else None
+    next_cycle = last  # the cycle that starts at the last minimum (its maximum may lie after the span)
     precursor = precursor_gauss(history, last["minimum_time"]) if last else (None, None)
     calib = calibration_rows(history, y0)
     return {
@@ -222,8 +243,8 @@ def truth_summary(history: StarHistory, settings: ArchiveSettings, cap_latitude_
         "last_minimum_time": last["minimum_time"] if last else None,
         "precursor_at_last_minimum": precursor[0],
         "precursor_at_last_minimum_error": precursor[1],
-        "next_amplitude": last["maximum_value"] if last else None,
-        "next_maximum_time": last["maximum_time"] if last else None,
+        "next_amplitude": next_cycle["maximum_value"] if last else None,
+        "next_maximum_time": next_cycle["maximum_time"] if last else None,
         "next_cycle": last["cycle"] if last else None,
         "calibration_cycles": len(calib),
         "calibration_correlation": pearson_r([r["precursor"] for r in calib], [r["amplitude"] for r in calib])
