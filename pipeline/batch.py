@@ -451,6 +451,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         unreachable scheduler.
     """
     t_start = time.monotonic()
+    paths = [os.fspath(p) for p in paths]
     measure = measure or MeasureSettings()
     settings = settings or IngestSettings()
     summary = IngestSummary()
@@ -501,16 +502,19 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         last_commit = time.monotonic()
 
     def classify_hashed(path, size, mtime_ns, digest, error):
-        nonlocal done_paths
         summary.hashed += 1
         if digest is None:
-            summary.unreadable += 1
-            summary.unreadable_reasons[reason_group(error)] += 1
-            done_paths += 1
-            if on_skip:
-                on_skip(path, error)
-            return
-        route(path, size, mtime_ns, digest)
+            not_stored(path, error)
+        else:
+            route(path, size, mtime_ns, digest)
+
+    def not_stored(path, error):
+        nonlocal done_paths
+        summary.unreadable += 1
+        summary.unreadable_reasons[reason_group(error)] += 1
+        done_paths += 1
+        if on_skip:
+            on_skip(path, error)
 
     def route(path, size, mtime_ns, digest, link=True):
         nonlocal done_paths
@@ -567,7 +571,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
                 try:
                     st = os.stat(path)
                 except OSError as exc:
-                    classify_hashed(path, 0, 0, None, f"cannot read file: {exc.strerror or exc}")
+                    not_stored(path, f"cannot read file: {exc.strerror or exc}")
                     continue
                 digest = store.digest_for_stat(path, st.st_size, st.st_mtime_ns)
                 if digest is None:
@@ -607,8 +611,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         # the machine (memory, a lost worker), so the next run tries it again
         if kind == "measure":
             in_flight.pop(payload[0][3], None)
-            key = payload[0][0]
-        classify_hashed(key, 0, 0, None, reason)
+        not_stored(key, reason)
 
     def resubmit(kind, payload):
         if kind == "hash":
@@ -644,6 +647,13 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
             commit()
             if bar:
                 bar.update(done_paths, summary.new)
+    except BaseException:  # interrupted or failed: keep every finished result, then re-raise
+        try:
+            commit(force=True)
+        except Exception:  # pragma: no cover - the store itself failed; its last commit stands
+            pass
+        raise
+    else:
         commit(force=True)
     finally:
         if bar:

@@ -42,6 +42,11 @@ def run(args) -> int:
             else:
                 with open(args.out, "w", encoding="utf-8", newline="") as fh:
                     n = export_csv(store, fh, status)
+    except BrokenPipeError:  # the reader of stdout stopped early (e.g. `| head`): not an error
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # no second error at exit
+        return EXIT_OK
     except (StoreError, OSError) as exc:
         print(f"polecast export: {exc}", file=sys.stderr)
         return EXIT_USAGE
