@@ -37,7 +37,8 @@ from pipeline.synth.activity import (cycle_sunspot_number, emergence_latitude_de
                                      monthly_noise, smooth_13_month)
 from pipeline.synth.transport import TransportGrid, TransportModel, deposit_ring, make_grid, step_matrix
 
-__all__ = ["StarParameters", "StarHistory", "star_history", "cap_mean_gauss", "EPOCH"]
+__all__ = ["StarParameters", "StarHistory", "star_history", "cap_mean_gauss", "days_to_datetime64",
+           "datetime64_to_days", "EPOCH"]
 
 #: internal clock: days since this instant (UTC)
 EPOCH = np.datetime64("1970-01-01T00:00:00", "ns")
@@ -247,6 +248,23 @@ def star_history(seed: int = 1, params: StarParameters = StarParameters()) -> St
     Returns
     -------
     StarHistory
+
+    Notes
+    -----
+    Per transport step ``B_(k+1) = M (B_k + S_k)`` with the one-step matrix
+    ``M`` of :func:`pipeline.synth.transport.step_matrix` and ``S_k`` the rings
+    of the regions emerging in step ``k``.  At the start of each cycle the
+    Babcock-Leighton recurrence sets the next amplitude,
+    ``A_(n+1) = A_ref (D / D_ref)^g exp(sigma z)``, ``z ~ N(0, 1)``, with ``D`` the
+    mean |(north - south)/2| of the last year (Babcock 1961, ApJ 133, 572;
+    Leighton 1969, ApJ 156, 1); the cycle's length is
+    ``P = P0 + k (A - A_ref) + sigma_P z`` clipped to 9-14 yr.
+
+    References
+    ----------
+    Hathaway, Wilson & Reichmann 1994, Solar Physics 151, 177 (cycle shape).
+    Hathaway 2011, Solar Physics 273, 221 (equatorward drift).
+    Jiang et al. 2014, Space Science Reviews 186, 491 (surface flux transport).
     """
     from pipeline.timeutil import decimal_year, from_decimal_year
 
@@ -298,7 +316,8 @@ def star_history(seed: int = 1, params: StarParameters = StarParameters()) -> St
         window = (step_yr > next_start - 1.0) & (step_yr <= step_yr[k_done])
         dip = 0.5 * (br[window][:, cap_n] @ wn - br[window][:, cap_s] @ ws)
         driving = float(np.mean(np.abs(dip)))
-        # Babcock-Leighton recurrence: the next cycle's strength follows the polar field at its start
+        # Babcock-Leighton recurrence (Babcock 1961; Leighton 1969): the next cycle's strength
+        # follows the polar field at its start
         peak = float(p.reference_amplitude * (driving / p.reference_precursor_gauss) ** p.recurrence_exponent
                      * np.exp(p.recurrence_scatter * rng.standard_normal()))
         start = next_start

@@ -78,3 +78,31 @@ def test_demo_truth_matches_the_star_and_its_seed_qualifies(demo_settings):
     span_years = q["end_yr"] - q["start_yr"]
     assert span_years >= 16.5 and len(truth["cycles"]) >= 2
     assert 0.8 <= truth["calibration_correlation"] <= 0.95
+
+
+def test_sunpy_opens_every_demo_file_with_the_generator_geometry(demo_settings):
+    # sunpy.map.Map (reference library) opens every committed file; the observer it reads is the
+    # Earth's ephemeris position the generator used, and the disk centre is where it was put
+    import astropy.units as u
+    import sunpy.map
+    from astropy.coordinates import SkyCoord
+
+    from pipeline.synth.instrument import ObservingSetup, disk_centre_pixel, earth_observers, geometry_for
+
+    files = sorted(DEMO.glob("*.fits"))
+    maps = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for path in files:
+            m = sunpy.map.Map(path)
+            assert m.unit.is_equivalent(u.G) and m.data.shape == (demo_settings.size, demo_settings.size)
+            maps.append(m)
+        times = [np.datetime64(m.date.isot) for m in maps]
+        observers = earth_observers(times)
+        for m, obs in zip(maps, observers):
+            assert m.observer_coordinate.lat.to_value(u.deg) == pytest.approx(obs.b0_deg, abs=1e-9)
+            assert m.dsun.to_value(u.m) == pytest.approx(obs.distance_m, rel=1e-12)
+        for m, obs in list(zip(maps, observers))[::25]:
+            geom = geometry_for(ObservingSetup(size=demo_settings.size), obs)
+            px = m.wcs.world_to_pixel(SkyCoord(0 * u.arcsec, 0 * u.arcsec, frame=m.coordinate_frame))
+            assert np.allclose([float(px[0]), float(px[1])], disk_centre_pixel(geom), atol=0.01)
