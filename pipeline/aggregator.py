@@ -14,12 +14,18 @@
 and rotation (area weighted, from the records' latitude profiles), and
 :func:`band_cap_means` the whole-cap means above each band boundary from it.
 
-Default B0 method: ``"profile"``.  It is the option with a closed-loop test:
-on frames rendered from a constant ``Br = B sin^8(lat)`` field seen from the
-Earth's true B0 through a year it cuts the annual modulation of the per-frame
-cap mean many-fold against ``"visible"`` (tests/test_b0.py), and unlike
+Default B0 method: ``"fill"``, the best-tested option.  On frames rendered
+from a constant ``Br = B sin^8(lat)`` field seen from the Earth's true B0
+through a year it cuts the annual modulation of the per-frame cap mean
+many-fold against ``"visible"`` and returns the whole-cap mean, as
+``"profile"`` does (tests/test_b0.py, tests/test_b0_fill.py); unlike
+``"profile"`` it assumes no shape in latitude, so on a reversal that proceeds
+poleward it recovers the whole-cap epoch within two rotations where the
+visible-part and fitted-shape means reverse early (tests/test_b0_fill.py,
+and the demo's closed loop against the synthetic star's truth); unlike
 ``"season"`` it keeps both poles in every frame, so the axial dipole is
-defined per frame.  Default smoothing: Gaussian with FWHM 6 rotations
+defined per frame.  It needs latitude profiles that reach the cap boundary
+(``measure.profile_min_latitude_deg <= cap latitude``, the default).  Default smoothing: Gaussian with FWHM 6 rotations
 (0.45 yr): a polarity episode lasting six months keeps its sign and about its
 length after smoothing, while the annual ripple is damped to about half and
 rotation-to-rotation noise by ~4.
@@ -34,7 +40,7 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from pipeline.b0 import B0_METHODS, pole_estimates
+from pipeline.b0 import B0_METHODS, SERIES_METHODS, fill_estimates, pole_estimates
 from pipeline.config import ConfigError, check_choice, check_number
 from pipeline.smoothing import SMOOTHING_METHODS, WIDTH_UNITS, Smoother, smooth
 from pipeline.timeutil import decimal_year, to_datetime64
@@ -53,7 +59,7 @@ class SeriesSettings:
     Attributes
     ----------
     b0_method : str
-        ``"profile"`` (default), ``"visible"`` or ``"season"`` (:mod:`pipeline.b0`).
+        ``"fill"`` (default), ``"profile"``, ``"visible"`` or ``"season"`` (:mod:`pipeline.b0`).
     season_threshold_deg : float
         ``"season"``: keep north only when ``B0 > threshold``, south when
         ``B0 < -threshold`` (degrees).
@@ -76,9 +82,12 @@ class SeriesSettings:
         ``"rotations"`` or ``"years"``.
     max_gap_years : float
         Smoothed values more than half this from any rotation with data are NaN.
+    fill_max_gap_years : float
+        ``"fill"``: a hidden latitude bin is filled only between frames that saw
+        it at most this far apart (years).
     """
 
-    b0_method: str = "profile"
+    b0_method: str = "fill"
     season_threshold_deg: float = 0.0
     profile_exponent: float = 8.0
     profile_fit_exponent: bool = False
@@ -89,6 +98,7 @@ class SeriesSettings:
     smoothing_width: float = 6.0
     smoothing_width_unit: str = "rotations"
     max_gap_years: float = 2.0
+    fill_max_gap_years: float = 1.5
 
     def __post_init__(self):
         check_choice("series.b0_method", self.b0_method, B0_METHODS)
@@ -105,6 +115,7 @@ class SeriesSettings:
         check_number("series.smoothing_width", self.smoothing_width, lo=0.0, lo_open=True)
         check_choice("series.smoothing_width_unit", self.smoothing_width_unit, WIDTH_UNITS)
         check_number("series.max_gap_years", self.max_gap_years, lo=0.0, lo_open=True)
+        check_number("series.fill_max_gap_years", self.fill_max_gap_years, lo=0.0, lo_open=True)
 
     @property
     def smoother(self) -> Smoother:
@@ -231,7 +242,10 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
     good, skipped = _good_records(records)
     n = len(good)
     t = to_datetime64([r.time for r in good]) if n else np.array([], dtype="datetime64[ns]")
-    est = [pole_estimates(r, settings) for r in good]
+    if settings.b0_method in SERIES_METHODS:
+        est = fill_estimates(good, np.atleast_1d(decimal_year(t)) if n else np.array([]), settings)
+    else:
+        est = [pole_estimates(r, settings) for r in good]
     north = np.array([e.north_br_gauss for e in est], dtype=float)
     south = np.array([e.south_br_gauss for e in est], dtype=float)
     north_err = np.array([e.north_br_error_gauss for e in est], dtype=float)
@@ -314,6 +328,8 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
     if method == "profile":
         attrs["profile_exponent"] = "fitted" if settings.profile_fit_exponent else float(settings.profile_exponent)
         attrs["profile_reference"] = "Svalgaard, Duvall & Scherrer 1978, Solar Physics 58, 225"
+    if method == "fill":
+        attrs["fill_max_gap_years"] = float(settings.fill_max_gap_years)
     if method == "season":
         attrs["season_threshold_deg"] = float(settings.season_threshold_deg)
     return xr.Dataset(data_vars, coords=coords, attrs=attrs)

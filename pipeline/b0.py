@@ -26,6 +26,22 @@ Methods (per frame and per pole):
 
     The exponent ``n`` is fixed (default 8, the value Svalgaard et al. 1978
     found, from memory) or fitted per frame.
+``"fill"``
+    Whole-cap mean from the latitude profiles, the bins a frame cannot see
+    filled in time from the frames that saw them.  First, bins a frame left
+    empty between bins it measured (pixel sampling) are interpolated in
+    latitude; then each latitude bin of the
+    cap is a time series observed when B0 tilts its pole toward the observer;
+    a frame's unobserved bins take the value interpolated linearly in time
+    between the nearest frames that saw them (within ``fill_max_gap_years``),
+    bins still empty next to the pole (never seen at the image's resolution)
+    take the value of the highest filled bin; and the cap mean is the
+    sphere-area-weighted mean over all bins,
+    ``<Br> = sum_b B_b (sin u_b - sin l_b) / (1 - sin L)``.  It assumes only
+    that the field at a given latitude changes smoothly over the half-year
+    its bin is hidden, not a shape in latitude, so it follows a reversal
+    that proceeds poleward (where a fitted shape lags or leads).  It needs
+    the whole series (:func:`fill_estimates`), not one frame.
 """
 
 from __future__ import annotations
@@ -35,8 +51,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["B0_METHODS", "PoleEstimate", "pole_estimates", "cap_mean_factor", "bin_mean_sin_power",
-           "fit_sin_power_profile"]
+__all__ = ["B0_METHODS", "SERIES_METHODS", "PoleEstimate", "pole_estimates", "fill_estimates",
+           "cap_mean_factor", "bin_mean_sin_power", "fit_sin_power_profile"]
 
 
 @dataclass(frozen=True)
@@ -200,8 +216,11 @@ def _profile(record, settings) -> PoleEstimate:
 
 _METHODS = {"visible": _visible, "season": _season, "profile": _profile}
 
+#: Methods that need the whole series rather than one frame.
+SERIES_METHODS = ("fill",)
+
 #: Valid names of ``series.b0_method``.
-B0_METHODS = tuple(sorted(_METHODS))
+B0_METHODS = tuple(sorted(set(_METHODS) | set(SERIES_METHODS)))
 
 
 def pole_estimates(record, settings) -> PoleEstimate:
@@ -225,9 +244,144 @@ def pole_estimates(record, settings) -> PoleEstimate:
     ValueError
         For an unknown method name (lists the valid ones).
     """
+    if settings.b0_method in SERIES_METHODS:
+        raise ValueError(f"b0_method {settings.b0_method!r} needs the whole series: use fill_estimates")
     try:
         fn = _METHODS[settings.b0_method]
     except KeyError:
         raise ValueError(f"b0_method: got {settings.b0_method!r}; valid methods are "
                          f"{', '.join(map(repr, B0_METHODS))}") from None
     return fn(record, settings)
+
+
+def _profile_arrays(records):
+    """Common bin edges and (frames x bins) arrays of bin means and areas; None if inconsistent."""
+    edges = None
+    for r in records:
+        e = np.asarray(r.profile_edges_deg or (), dtype=float)
+        if e.size >= 2:
+            edges = e
+            break
+    if edges is None:
+        return None
+    nb = edges.size - 1
+    br = np.full((len(records), nb), np.nan)
+    area = np.zeros((len(records), nb))
+    for k, r in enumerate(records):
+        e = np.asarray(r.profile_edges_deg or (), dtype=float)
+        if e.shape != edges.shape or not np.allclose(e, edges):
+            continue
+        br[k] = [math.nan if v is None else float(v) for v in r.profile_br_gauss]
+        area[k] = [0.0 if v is None else float(v) for v in r.profile_area_m2]
+    br[~(area > 0)] = np.nan
+    return edges, br, area
+
+
+def _fill_bins(t_years, values, max_gap_years):
+    """Fill NaN entries of each column by linear interpolation in time between observed rows.
+
+    An entry is filled only when observed rows lie within ``max_gap_years``
+    on both sides (or on one side within half of it, at the ends of the data).
+    """
+    out = values.copy()
+    for b in range(values.shape[1]):
+        col = values[:, b]
+        seen = np.isfinite(col)
+        if seen.sum() == 0:
+            continue
+        ts, vs = t_years[seen], col[seen]
+        miss = ~seen
+        tm = t_years[miss]
+        j = np.searchsorted(ts, tm)
+        prev_gap = np.where(j > 0, tm - ts[np.maximum(j - 1, 0)], np.inf)
+        next_gap = np.where(j < ts.size, ts[np.minimum(j, ts.size - 1)] - tm, np.inf)
+        inner = (prev_gap + next_gap) <= max_gap_years
+        edge = (np.minimum(prev_gap, next_gap) <= 0.5 * max_gap_years) & ~np.isfinite(prev_gap + next_gap)
+        ok = inner | edge
+        filled = np.interp(tm, ts, vs)  # constant beyond the ends
+        col_out = out[:, b]
+        idx = np.flatnonzero(miss)
+        col_out[idx[ok]] = filled[ok]
+    return out
+
+
+def _fill_latitude_interior(values):
+    """Per row, interpolate NaN bins lying between measured bins (columns ordered in latitude)."""
+    out = values.copy()
+    x = np.arange(values.shape[1])
+    for k in range(values.shape[0]):
+        seen = np.isfinite(values[k])
+        if seen.sum() < 2:
+            continue
+        first, last = np.flatnonzero(seen)[[0, -1]]
+        hole = ~seen & (x > first) & (x < last)
+        if hole.any():
+            out[k, hole] = np.interp(x[hole], x[seen], values[k, seen])
+    return out
+
+
+def _extend_poleward(values):
+    """Per row, NaN bins beyond the last filled bin (the pole side) take its value."""
+    out = values.copy()
+    for k in range(values.shape[0]):
+        seen = np.flatnonzero(np.isfinite(values[k]))
+        if seen.size:
+            out[k, seen[-1] + 1:] = values[k, seen[-1]]
+    return out
+
+
+def fill_estimates(records, t_years, settings) -> list:
+    """Both poles' whole-cap means for every record by the ``"fill"`` method.
+
+    Parameters
+    ----------
+    records : list of pipeline.measure.FrameRecord
+        In time order, with latitude profiles that reach the cap boundary.
+    t_years : ndarray
+        Their times, decimal years.
+    settings : pipeline.aggregator.SeriesSettings
+        Uses ``cap_latitude_deg`` (None: each record's) and ``fill_max_gap_years``.
+
+    Returns
+    -------
+    list of PoleEstimate
+        Gauss; NaN for a pole whose cap has a bin that neither the frame nor
+        any frame within the gap limit saw.  The error is the record's
+        visible-part standard error (the filled bins add no scatter term).
+
+    Notes
+    -----
+    Sphere area of the band between latitudes l and u: ``2 pi R^2 (sin u - sin l)``
+    (handbook geometry); the cap above L has ``2 pi R^2 (1 - sin L)``.
+    """
+    n = len(records)
+    nan_est = [PoleEstimate(math.nan, math.nan, math.nan, math.nan) for _ in range(n)]
+    arrays = _profile_arrays(records)
+    if arrays is None or n == 0:
+        return nan_est
+    edges, br, _area = arrays
+    cap = settings.cap_latitude_deg
+    if cap is None:
+        caps = [r.cap_latitude_deg for r in records if r.cap_latitude_deg is not None]
+        cap = float(caps[0]) if caps else 60.0
+    lo, hi = edges[:-1], edges[1:]
+    ty = np.asarray(t_years, dtype=float)
+    out = []
+    poles = {}
+    for sign, name in ((+1, "north"), (-1, "south")):
+        idx = np.flatnonzero((lo >= cap - 1e-9) if sign > 0 else (hi <= -cap + 1e-9))
+        if sign < 0:
+            idx = idx[::-1]  # columns from the cap boundary to the pole
+        a_lo, a_hi = (lo[idx], hi[idx]) if sign > 0 else (-hi[idx], -lo[idx])
+        band = np.sin(np.deg2rad(a_hi)) - np.sin(np.deg2rad(a_lo))
+        complete = idx.size and abs(band.sum() - (1.0 - math.sin(math.radians(cap)))) < 1e-6
+        if not complete:  # the profiles do not cover the whole cap
+            poles[name] = np.full(n, np.nan)
+            continue
+        vals = _fill_latitude_interior(br[:, idx])
+        vals = _extend_poleward(_fill_bins(ty, vals, settings.fill_max_gap_years))
+        poles[name] = np.where(np.isfinite(vals).all(axis=1), (vals * band).sum(axis=1) / band.sum(), np.nan)
+    for k, r in enumerate(records):
+        out.append(PoleEstimate(float(poles["north"][k]), float(poles["south"][k]),
+                                _nan_if_none(r.north_br_error_gauss), _nan_if_none(r.south_br_error_gauss)))
+    return out

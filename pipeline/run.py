@@ -31,7 +31,7 @@ from pathlib import Path
 from pipeline.config import ConfigError
 from pipeline.jsonio import finite_or_none, write_json
 
-__all__ = ["RunSettings", "RunResult", "run_pipeline", "CAUTIONS", "find_demo_data"]
+__all__ = ["RunSettings", "RunResult", "run_pipeline", "CAUTIONS", "find_demo_data", "find_demo_config"]
 
 #: Printed with every forecast and carried by every report.
 CAUTIONS = ("A statistical forecast calibrated on few cycles: the intervals assume the past relation holds. "
@@ -279,3 +279,12 @@ def find_demo_data(explicit: str | None = None) -> Path:
     raise ConfigError("demo data not found: run from a clone of polecast (it holds demo_fits/), "
                       "or pass --data DIR / set POLECAST_DEMO_DATA")
 
+
+
+def find_demo_config() -> Path:
+    """``configs/demo.toml`` of the clone (the working folder first, then beside the package)."""
+    for base in (Path.cwd(), Path(__file__).resolve().parent.parent):
+        path = base / "configs" / "demo.toml"
+        if path.exists():
+            return path.resolve()
+    raise ConfigError("configs/demo.toml not found: run `polecast demo` from a clone of polecast")

@@ -96,11 +96,11 @@ def test_profile_method_gives_the_whole_cap_mean_from_a_partial_view():
     # north seen only up to 80 deg, south fully: the fit returns B f(n, 60) (Svalgaard et al. 1978)
     prof = _profile(10.0, -6.0, visible_north=80.0)
     recs = [_rec("2034-01-10T00:00:00.000Z", 2380.2, 1.0, -1.0, b0=-7.0, profile=prof)]
-    ds = polar_series(recs)
+    ds = polar_series(recs, SeriesSettings(b0_method="profile"))
     assert ds.attrs["b0_method"] == "profile"
     assert ds["north_br_gauss"].values[0] == pytest.approx(10.0 * cap_mean_factor(8.0, 60.0), rel=1e-9)
     assert ds["south_br_gauss"].values[0] == pytest.approx(-6.0 * cap_mean_factor(8.0, 60.0), rel=1e-9)
-    ds65 = polar_series(recs, SeriesSettings(cap_latitude_deg=65.0))
+    ds65 = polar_series(recs, SeriesSettings(b0_method="profile", cap_latitude_deg=65.0))
     assert ds65["north_br_gauss"].values[0] == pytest.approx(10.0 * cap_mean_factor(8.0, 65.0), rel=1e-9)
 
 

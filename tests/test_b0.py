@@ -81,7 +81,7 @@ def test_unknown_method():
     class Fake:
         b0_method = "tilt"
 
-    with pytest.raises(ValueError, match="valid methods are 'profile', 'season', 'visible'"):
+    with pytest.raises(ValueError, match="valid methods are 'fill', 'profile', 'season', 'visible'"):
         pole_estimates(_record(1.0), Fake())
 
 

@@ -84,7 +84,7 @@ def test_series_netcdf_and_csv_round_trip(store_path, tmp_path, capsys):
     nc = tmp_path / "series.nc"
     assert main(["series", str(store_path), "--out", str(nc)]) == 0
     ds = xr.open_dataset(nc)
-    assert ds.attrs["b0_method"] == "profile"
+    assert ds.attrs["b0_method"] == "fill"  # the default
     for name in ("north_br_gauss", "dipole_br_rotation_gauss", "south_br_smooth_gauss", "frames_per_rotation"):
         assert ds[name].attrs["units"] in ("G", "1")
     assert ds.sizes["rotation"] >= 30 and int(ds["frames_per_rotation"].sum()) == ds.sizes["time"]

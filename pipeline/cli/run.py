@@ -115,16 +115,13 @@ def run(args) -> int:
 
 def demo(args) -> int:
     from pipeline.config import ConfigError
-    from pipeline.run import find_demo_data
+    from pipeline.run import find_demo_config, find_demo_data
 
     try:
         data = find_demo_data(args.data)
+        conf = find_demo_config()
     except ConfigError as exc:
         print(f"polecast demo: {exc}", file=sys.stderr)
-        return EXIT_USAGE
-    conf = data.parent / "configs" / "demo.toml"
-    if not conf.exists():
-        print(f"polecast demo: {conf} not found (run from a clone of polecast)", file=sys.stderr)
         return EXIT_USAGE
     config = _load(conf, ingest={"workers": args.workers})
     out = Path(args.out).resolve()

@@ -33,8 +33,8 @@ ROTATION_CSV_COLUMNS = (
 
 def add_series_options(p) -> None:
     """Options shared by ``series`` and ``reversals`` (the [series] section)."""
-    p.add_argument("--b0-method", choices=("profile", "season", "visible"),
-                   help="B0 handling of the cap means (default profile)")
+    p.add_argument("--b0-method", choices=("fill", "profile", "season", "visible"),
+                   help="B0 handling of the cap means (default fill)")
     p.add_argument("--smoothing", choices=("gaussian", "running", "none"), help="smoother (default gaussian)")
     p.add_argument("--smoothing-width", type=float, metavar="N",
                    help="FWHM (gaussian) or window (running) in rotations (default 6)")
