@@ -42,3 +42,11 @@ def write_frame(path, br=None, *, observer=None, size=128, rotation_deg=0.0, com
     return path
 
 
+def declare_size(path, n):
+    """Rewrite the NAXIS1/NAXIS2 cards in place (bytes), leaving the data as written (a hostile header)."""
+    raw = bytearray(path.read_bytes())
+    for key in (b"NAXIS1  =", b"NAXIS2  ="):
+        i = raw.index(key)
+        raw[i:i + 80] = (key.decode() + f"{n:>21d}").ljust(80).encode()
+    path.write_bytes(bytes(raw))
+    return path

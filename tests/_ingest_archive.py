@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from astropy.io import fits
 
-from tests._frames import make_observer, write_frame
+from tests._frames import declare_size, make_observer, write_frame
 
 #: name -> regular expression of the reason `pipeline.reader` gives (its own wording: regression only)
 HOSTILE_REASONS = {
@@ -46,16 +46,6 @@ def good_archive(root, n: int, size: int = 64) -> list:
     return paths
 
 
-def _declare_size(path, n):
-    """Rewrite NAXIS1/NAXIS2 in place (bytes), leaving the data as written."""
-    raw = bytearray(path.read_bytes())
-    for key in (b"NAXIS1  =", b"NAXIS2  ="):
-        i = raw.index(key)
-        raw[i:i + 80] = (key.decode() + f"{n:>21d}").ljust(80).encode()
-    path.write_bytes(bytes(raw))
-    return path
-
-
 def hostile_files(root) -> dict:
     """One file of each kind of bad input (FITS Standard 4.0 violations or unusable content); name -> path."""
     root.mkdir(parents=True, exist_ok=True)
@@ -78,7 +68,7 @@ def hostile_files(root) -> dict:
         del h["DATE-OBS"]
 
     out["notime.fits"] = write_frame(root / "notime.fits", size=64, header_edit=notime)
-    out["absurd.fits"] = _declare_size(write_frame(root / "absurd.fits", size=64, compression=None), 1_000_000)
+    out["absurd.fits"] = declare_size(write_frame(root / "absurd.fits", size=64, compression=None), 1_000_000)
     out["allnan.fits"] = write_frame(root / "allnan.fits", br=lambda lat, lon: np.full(lat.shape, np.nan), size=64)
     plain.unlink()
     return out

@@ -8,7 +8,7 @@ from astropy.io import fits
 
 from pipeline.config import MeasureSettings
 from pipeline.reader import FrameError, read_frame, read_header
-from tests._frames import make_observer, uniform_caps, write_frame
+from tests._frames import declare_size, write_frame
 
 
 @pytest.mark.parametrize("compression", [None, "RICE_1", "GZIP_1", "GZIP_2", "HCOMPRESS_1"])
@@ -158,25 +158,15 @@ def test_no_bunit(tmp_path):
         read_frame(write_frame(tmp_path / "f.fits", size=64, header_edit=strip))
 
 
-def _declare_size(path, n):
-    """Rewrite the NAXIS1/NAXIS2 cards in place (bytes), leaving the data as written."""
-    raw = bytearray(path.read_bytes())
-    for key in (b"NAXIS1  =", b"NAXIS2  ="):
-        i = raw.index(key)
-        raw[i:i + 80] = (key.decode() + f"{n:>21d}").ljust(80).encode()
-    path.write_bytes(bytes(raw))
-    return path
-
-
 def test_absurd_dimensions_refused_before_allocation(tmp_path):
     """A header declaring 10^6 x 10^6 pixels in a tiny file is refused by the ceiling, not allocated."""
-    path = _declare_size(write_frame(tmp_path / "f.fits", size=64, compression=None), 1_000_000)
+    path = declare_size(write_frame(tmp_path / "f.fits", size=64, compression=None), 1_000_000)
     with pytest.raises(FrameError, match="exceeds the ceiling"):
         read_frame(path)
 
 
 def test_declared_size_larger_than_file(tmp_path):
-    path = _declare_size(write_frame(tmp_path / "f.fits", size=64, compression=None), 4000)
+    path = declare_size(write_frame(tmp_path / "f.fits", size=64, compression=None), 4000)
     with pytest.raises(FrameError, match="truncated"):
         read_frame(path, MeasureSettings())
 
