@@ -345,7 +345,6 @@ def cycle_landmarks(time_decimal_year, values, settings: CycleSettings | None = 
         smoothed = smoothed_series(values, settings)
     found = find_extrema(time_decimal_year, smoothed, settings)
     ext = list(found["extrema"])
-    pending = found["pending"]
     while ext and ext[0][2] != "minimum":
         ext.pop(0)
     cycles: list[dict] = []

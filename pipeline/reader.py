@@ -16,7 +16,6 @@ from __future__ import annotations
 import os
 import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 

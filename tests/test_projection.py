@@ -10,8 +10,7 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from pipeline.projection import (ImageGeometry, Observer, Window, cap_area_m2, plan_windows, surface_points,
-                                 visible_area_m2)
+from pipeline.projection import Window, cap_area_m2, plan_windows, surface_points, visible_area_m2
 from pipeline.reader import _header_from_hdu
 from pipeline.synth.instrument import ObservingSetup, frame_header, geometry_for
 
