@@ -236,6 +236,9 @@ def main(argv=None) -> int:
     ap.add_argument("--frames", type=int, default=1000)
     ap.add_argument("--big", type=int, default=10000)
     ap.add_argument("--size", type=int, default=128)
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="1- and 2-worker runs alternate this many times; the best steady rate of each is kept "
+                         "(single runs on a shared 2-core VM vary by tens of per cent)")
     args = ap.parse_args(argv)
     RESULTS.mkdir(parents=True, exist_ok=True)
     work = DATA / "ingest_stores"
@@ -247,8 +250,16 @@ def main(argv=None) -> int:
     print(f"archives ready in {time.perf_counter() - t0:.0f} s", file=sys.stderr)
 
     runs = {}
-    runs["local_1_worker"] = run_ingest(archive, work / "w1.db", workers=1)
-    runs["local_2_workers"] = run_ingest(archive, work / "w2.db", workers=2)
+    trials = {"local_1_worker": [], "local_2_workers": []}
+    for k in range(max(1, args.repeat)):  # alternate so slow spells of the machine hit both alike
+        trials["local_1_worker"].append(run_ingest(archive, work / f"w1_{k}.db", workers=1))
+        trials["local_2_workers"].append(run_ingest(archive, work / f"w2_{k}.db", workers=2))
+    best = {}
+    for name, rs in trials.items():
+        k = max(range(len(rs)), key=lambda i: rs[i]["steady_frames_per_s"] or 0.0)
+        runs[name] = dict(rs[k], all_steady_frames_per_s=[r["steady_frames_per_s"] for r in rs])
+        best[name] = k
+    shutil.copyfile(work / f"w2_{best['local_2_workers']}.db", work / "w2.db")
     runs["rerun_nothing_new"] = _timed([sys.executable, "-m", "pipeline", "ingest", str(archive), "--store",
                                         str(work / "w2.db"), "--workers", "2"], work / "w2.db")
     runs["dask_2_workers"] = run_dask(archive, work / "dask.db")
