@@ -40,12 +40,12 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from pipeline.b0 import B0_METHODS, SERIES_METHODS, fill_estimates, pole_estimates
+from pipeline.b0 import B0_METHODS, SERIES_METHODS, fill_estimates, fill_hidden_bins, pole_estimates
 from pipeline.config import ConfigError, check_choice, check_number
 from pipeline.smoothing import SMOOTHING_METHODS, WIDTH_UNITS, Smoother, smooth
 from pipeline.timeutil import decimal_year, to_datetime64
 
-__all__ = ["SeriesSettings", "polar_series", "latitude_time_diagram", "band_cap_means",
+__all__ = ["SeriesSettings", "polar_series", "latitude_time_diagram", "filled_diagram", "band_cap_means",
            "rotation_mid_time", "rotation_number", "BAND_BOUNDARIES_DEG"]
 
 #: Cap boundaries of the per-band reversal analysis (|latitude|, degrees).
@@ -412,6 +412,35 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
         name="br_gauss",
         attrs={"units": "G", "long_name": "longitude-averaged radial field", "frames_used": len(used),
                "frames_left_out": skipped})
+
+
+def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_latitude_deg: float = 50.0):
+    """The latitude-time diagram with hidden high-latitude bins filled as the ``"fill"`` B0 method does.
+
+    Bins with ``|lat| >= min_abs_latitude_deg`` of each hemisphere are filled
+    per rotation by :func:`pipeline.b0.fill_hidden_bins` (latitude holes, then
+    time within ``max_gap_years``, then toward the pole); other bins are kept
+    as measured.  Use it for band cap means consistent with the default polar
+    series; show the measured diagram itself.
+
+    Returns
+    -------
+    xarray.DataArray
+        Same shape and coordinates, ``attrs["filled"] = True``.
+    """
+    vals = np.array(diagram.values, dtype=float)
+    if vals.size == 0:
+        return diagram.copy()
+    t = np.atleast_1d(decimal_year(diagram["rotation_time"].values))
+    lo = diagram["latitude_lower"].values
+    hi = diagram["latitude_upper"].values
+    for sel in (np.flatnonzero(lo >= min_abs_latitude_deg - 1e-9),
+                np.flatnonzero(hi <= -min_abs_latitude_deg + 1e-9)[::-1]):
+        if sel.size:
+            vals[sel] = fill_hidden_bins(t, vals[sel].T, max_gap_years).T
+    out = diagram.copy(data=vals)
+    out.attrs = dict(diagram.attrs, filled=True, fill_max_gap_years=float(max_gap_years))
+    return out
 
 
 def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,

@@ -51,7 +51,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["B0_METHODS", "SERIES_METHODS", "PoleEstimate", "pole_estimates", "fill_estimates",
+__all__ = ["B0_METHODS", "SERIES_METHODS", "PoleEstimate", "pole_estimates", "fill_estimates", "fill_hidden_bins",
            "cap_mean_factor", "bin_mean_sin_power", "fit_sin_power_profile"]
 
 
@@ -330,6 +330,28 @@ def _extend_poleward(values):
     return out
 
 
+def fill_hidden_bins(t_years, values, max_gap_years):
+    """The ``"fill"`` steps on one hemisphere's bins: latitude holes, then time, then to the pole.
+
+    Parameters
+    ----------
+    t_years : ndarray, shape (n,)
+        Times of the rows, decimal years, increasing.
+    values : ndarray, shape (n, m)
+        Bin means (gauss, NaN where not measured), columns ordered from the cap
+        boundary toward the pole.
+    max_gap_years : float
+        Longest time gap bridged (see :func:`_fill_bins`).
+
+    Returns
+    -------
+    ndarray
+        The filled values (NaN only where nothing within the limits saw a bin).
+    """
+    vals = _fill_latitude_interior(np.asarray(values, dtype=float))
+    return _extend_poleward(_fill_bins(np.asarray(t_years, dtype=float), vals, max_gap_years))
+
+
 def fill_estimates(records, t_years, settings) -> list:
     """Both poles' whole-cap means for every record by the ``"fill"`` method.
 
@@ -378,8 +400,7 @@ def fill_estimates(records, t_years, settings) -> list:
         if not complete:  # the profiles do not cover the whole cap
             poles[name] = np.full(n, np.nan)
             continue
-        vals = _fill_latitude_interior(br[:, idx])
-        vals = _extend_poleward(_fill_bins(ty, vals, settings.fill_max_gap_years))
+        vals = fill_hidden_bins(ty, br[:, idx], settings.fill_max_gap_years)
         poles[name] = np.where(np.isfinite(vals).all(axis=1), (vals * band).sum(axis=1) / band.sum(), np.nan)
     for k, r in enumerate(records):
         out.append(PoleEstimate(float(poles["north"][k]), float(poles["south"][k]),

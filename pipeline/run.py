@@ -169,7 +169,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     ConfigError
         A missing input file or a bad setting (named).
     """
-    from pipeline.aggregator import band_cap_means, latitude_time_diagram, polar_series
+    from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
     from pipeline.precursor import precursor_for_forecast
@@ -209,7 +209,9 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     # 3. reversals (poles, dipole, latitude bands)
     smoother = config.series.smoother
     reversals = {k: v.to_dict() for k, v in series_reversals(series, config.reversals, smoother).items()}
-    bands = band_reversals(band_cap_means(diagram), config.reversals, smoother)
+    for_bands = (filled_diagram(diagram, config.series.fill_max_gap_years)
+                 if config.series.b0_method == "fill" else diagram)
+    bands = band_reversals(band_cap_means(for_bands), config.reversals, smoother)
     reversals["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
     write_json(out / "reversals.json", reversals)
 

@@ -108,3 +108,31 @@ def test_fill_recovers_a_poleward_reversal_within_two_rotations(tmp_path):
     for pole in ("north", "south"):
         assert errors["fill", pole] <= 2 * ROTATION_YEARS
         assert errors["fill", pole] < errors["visible", pole]
+
+
+def test_filled_diagram_is_exact_for_fields_linear_in_time():
+    # Linear interpolation reproduces a field linear in time exactly (analytic): hide the highest
+    # bins of each hemisphere in alternate half-years, as B0 does, and fill them back.
+    import xarray as xr
+
+    from pipeline.aggregator import band_cap_means, filled_diagram
+    from pipeline.timeutil import from_decimal_year
+
+    edges = np.arange(-90.0, 91.0, 5.0)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    years = 2040.0 + np.arange(40) * ROTATION_YEARS
+    truth = (np.sign(centres)[:, None] * (3.0 - 1.5 * (years[None, :] - 2040.0))
+             * np.sin(np.radians(np.abs(centres)))[:, None] ** 8)
+    seen = truth.copy()
+    half_year = np.floor((years - 2040.0) * 2).astype(int) % 2 == 0
+    seen[np.ix_(centres > 75, half_year)] = np.nan
+    seen[np.ix_(centres < -75, ~half_year)] = np.nan
+    da = xr.DataArray(seen, dims=("latitude", "rotation"), coords={
+        "latitude": centres, "latitude_lower": ("latitude", edges[:-1]), "latitude_upper": ("latitude", edges[1:]),
+        "rotation": np.arange(40), "rotation_time": ("rotation", from_decimal_year(years))})
+    filled = filled_diagram(da, max_gap_years=1.0)
+    inner = (years > 2040.6) & (years < years[-1] - 0.6)  # the ends are held constant, not extrapolated
+    assert np.allclose(filled.values[:, inner], truth[:, inner], atol=1e-12)
+    means = band_cap_means(filled)
+    whole = band_cap_means(da.copy(data=truth))
+    assert np.allclose(means["north"][60.0].values[inner], whole["north"][60.0].values[inner], atol=1e-12)

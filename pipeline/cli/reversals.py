@@ -136,7 +136,7 @@ def run(args) -> int:
         res = polar_reversals(t, north, south, config.reversals, smoother)
         out = {k: v.to_dict() for k, v in res.items()}
     else:
-        from pipeline.aggregator import band_cap_means, latitude_time_diagram, polar_series
+        from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
 
         records, err = load_records(args.store, "reversals")
         if records is None:
@@ -144,8 +144,10 @@ def run(args) -> int:
             return EXIT_USAGE
         ds = polar_series(records, config.series)
         out = {k: v.to_dict() for k, v in series_reversals(ds, config.reversals, smoother).items()}
-        bands = band_reversals(band_cap_means(latitude_time_diagram(records, config.series)),
-                               config.reversals, smoother)
+        diagram = latitude_time_diagram(records, config.series)
+        if config.series.b0_method == "fill":  # band means consistent with the polar series
+            diagram = filled_diagram(diagram, config.series.fill_max_gap_years)
+        bands = band_reversals(band_cap_means(diagram), config.reversals, smoother)
         out["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
         if not records:
             problems.append(f"{args.store}: the store has no measured frames")
