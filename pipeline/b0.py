@@ -368,7 +368,13 @@ def fill_estimates(records, t_years, settings) -> list:
     -------
     list of PoleEstimate
         Gauss; NaN for a pole whose cap has a bin that neither the frame nor
-        any frame within the gap limit saw.  The error is the record's
+        any frame within the gap limit saw.
+
+    Raises
+    ------
+    pipeline.config.ConfigError
+        When the profiles do not cover the cap (``measure.profile_min_latitude_deg``
+        above the cap latitude), naming the fix.  The error is the record's
         visible-part standard error (the filled bins add no scatter term).
 
     Notes
@@ -398,8 +404,12 @@ def fill_estimates(records, t_years, settings) -> list:
         band = np.sin(np.deg2rad(a_hi)) - np.sin(np.deg2rad(a_lo))
         complete = idx.size and abs(band.sum() - (1.0 - math.sin(math.radians(cap)))) < 1e-6
         if not complete:  # the profiles do not cover the whole cap
-            poles[name] = np.full(n, np.nan)
-            continue
+            from pipeline.config import ConfigError
+
+            raise ConfigError(
+                f"series.b0_method: got 'fill', but the records' latitude profiles do not reach the cap "
+                f"boundary {cap:g} deg; re-measure with measure.profile_min_latitude_deg <= {cap:g} "
+                f"(ingest --remeasure), or choose b0_method 'profile' or 'visible'")
         vals = fill_hidden_bins(ty, br[:, idx], settings.fill_max_gap_years)
         poles[name] = np.where(np.isfinite(vals).all(axis=1), (vals * band).sum(axis=1) / band.sum(), np.nan)
     for k, r in enumerate(records):

@@ -43,8 +43,10 @@ def test_fill_needs_profiles_reaching_the_cap(tmp_path):
     years = 2034.0 + np.arange(3) * 0.1
     recs = render_and_measure(tmp_path, years, lambda lat, y: np.full_like(lat, 1.0), size=64,
                               settings=MeasureSettings(profile_min_latitude_deg=70.0))
-    est = fill_estimates(recs, years, SeriesSettings(b0_method="fill"))
-    assert all(math.isnan(e.north_br_gauss) and math.isnan(e.south_br_gauss) for e in est)
+    with pytest.raises(ConfigError, match="profiles do not reach the cap boundary 60 deg.*profile_min_latitude_deg"):
+        fill_estimates(recs, years, SeriesSettings(b0_method="fill"))
+    # the other methods still work on such records
+    assert np.isfinite(polar_series(recs, SeriesSettings(b0_method="visible"))["north_br_gauss"].values).all()
 
 
 def test_fill_cuts_the_annual_modulation_of_a_constant_field(tmp_path):
