@@ -44,6 +44,7 @@ __all__ = [
     "Forecast",
     "METHODS",
     "CAUTIONS",
+    "CAUTION_SENTENCES",
     "LEVEL_68",
     "LEVEL_95",
     "read_calibration_csv",
@@ -59,9 +60,14 @@ __all__ = [
 LEVEL_68 = 0.6826894921370859
 LEVEL_95 = 0.95
 
-CAUTIONS = ("This is a statistical forecast calibrated on few solar cycles; its intervals assume the "
-            "calibration cycles are representative of the next one. Official space-weather forecasts "
-            "and mission rules govern operational decisions.")
+#: The cautions every forecast, summary and report carries, sentence by sentence.
+CAUTION_SENTENCES = (
+    "This is a statistical forecast calibrated on few solar cycles; its intervals assume the calibration "
+    "cycles are representative of the next one.",
+    "Official space-weather forecasts and mission rules govern operational decisions about spacecraft "
+    "and astronauts.",
+)
+CAUTIONS = " ".join(CAUTION_SENTENCES)
 
 
 @dataclass(frozen=True)

@@ -30,14 +30,9 @@ from pathlib import Path
 
 from pipeline.config import ConfigError
 from pipeline.jsonio import finite_or_none, write_json
+from pipeline.regression import CAUTIONS
 
-__all__ = ["RunSettings", "RunResult", "run_pipeline", "CAUTIONS", "find_demo_data", "find_demo_config"]
-
-#: Printed with every forecast and carried by every report.
-CAUTIONS = ("A statistical forecast calibrated on few cycles: the intervals assume the past relation holds. "
-            "Official space-weather forecasts and mission rules govern operational decisions about "
-            "spacecraft and astronauts.")
-
+__all__ = ["RunSettings", "RunResult", "run_pipeline", "find_demo_data", "find_demo_config"]
 
 @dataclass(frozen=True)
 class RunSettings:

@@ -137,7 +137,8 @@ def test_tables_carry_every_crossing_the_forecast_the_truth_and_the_cautions(bui
     fc = json.loads((built["products"] / "forecast.json").read_text())
     assert f"{fc['amplitude']:.1f}" in text and f"{fc['loo_rmse']:.1f}" in text and f"{fc['r']:.3f}" in text
     assert f"{fc['interval_95'][0]:.1f} \u2013 {fc['interval_95'][1]:.1f}" in text
-    assert "statistical forecast" in text and "official space-weather forecasts" in text and "mission rules" in text
+    low = text.lower()
+    assert "statistical forecast" in low and "official space-weather forecasts" in low and "mission rules" in low
     assert "truth inside?" in text and f"{NORTH_REVERSAL_YR:.3f}" in text and f"{SOUTH_REVERSAL_YR:.3f}" in text
     for pkg in VERSION_PACKAGES:
         assert pkg in text

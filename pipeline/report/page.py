@@ -10,16 +10,13 @@ from __future__ import annotations
 import math
 
 from pipeline.report.html import figure_html, format_number, json_block, note_html, page_html, table_html
+from pipeline.regression import CAUTION_SENTENCES
 
 __all__ = ["CAUTION_TEXTS", "reversal_tables", "forecast_table", "truth_table", "cycles_table",
            "skipped_table", "store_table", "versions_table", "calibration_rows_table", "assemble_page"]
 
-#: the cautions shown at the top of every report
-CAUTION_TEXTS = (
-    "The next-cycle amplitude is a statistical forecast calibrated on few solar cycles; its intervals "
-    "assume that the calibration cycles are representative of the coming one.",
-    "Defer to official space-weather forecasts and to mission rules for any operational decision.",
-)
+#: the cautions shown at the top of every report (the forecast's own, pipeline.regression)
+CAUTION_TEXTS = CAUTION_SENTENCES
 
 _POLES = ("north", "south", "dipole")
 
