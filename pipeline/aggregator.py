@@ -414,7 +414,8 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
                "frames_left_out": skipped})
 
 
-def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_latitude_deg: float = 50.0):
+def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_latitude_deg: float = 50.0,
+                   min_seen_fraction: float = 0.15):
     """The latitude-time diagram with hidden high-latitude bins filled as the ``"fill"`` B0 method does.
 
     Bins with ``|lat| >= min_abs_latitude_deg`` of each hemisphere are filled
@@ -423,14 +424,23 @@ def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_la
     as measured.  Use it for band cap means consistent with the default polar
     series; show the measured diagram itself.
 
+    A bin measured in fewer than ``min_seen_fraction`` of the rotations is
+    beyond the images' resolution (a few pixels near the pole): its own values
+    are not used, it is filled from the resolved bins below it, and the
+    coordinate ``resolved`` marks it False so that :func:`band_cap_means`
+    gives no mean for a band made mostly of such bins.
+
     Returns
     -------
     xarray.DataArray
-        Same shape and coordinates, ``attrs["filled"] = True``.
+        Same shape and coordinates plus ``resolved`` (latitude), ``attrs["filled"] = True``.
     """
     vals = np.array(diagram.values, dtype=float)
     if vals.size == 0:
         return diagram.copy()
+    seen = np.isfinite(vals).mean(axis=1)
+    resolved = seen >= min_seen_fraction
+    vals[~resolved] = np.nan
     t = np.atleast_1d(decimal_year(diagram["rotation_time"].values))
     lo = diagram["latitude_lower"].values
     hi = diagram["latitude_upper"].values
@@ -438,8 +448,9 @@ def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_la
                 np.flatnonzero(hi <= -min_abs_latitude_deg + 1e-9)[::-1]):
         if sel.size:
             vals[sel] = fill_hidden_bins(t, vals[sel].T, max_gap_years).T
-    out = diagram.copy(data=vals)
-    out.attrs = dict(diagram.attrs, filled=True, fill_max_gap_years=float(max_gap_years))
+    out = diagram.copy(data=vals).assign_coords(resolved=("latitude", resolved))
+    out.attrs = dict(diagram.attrs, filled=True, fill_max_gap_years=float(max_gap_years),
+                     min_seen_fraction=float(min_seen_fraction))
     return out
 
 
@@ -471,13 +482,15 @@ def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
     ``<Br>_L = sum_b B_b dA_b / sum_b dA_b`` over bins with data inside
     ``|lat| >= L``, with the sphere area of a bin
     ``dA_b = 2 pi R^2 |sin(hi) - sin(lo)|`` (the zone area, Archimedes'
-    hat-box theorem).
+    hat-box theorem).  On a :func:`filled_diagram`, a band whose resolved bins
+    cover less than ``min_coverage`` of its area has no mean.
     """
     check_number("min_coverage", min_coverage, lo=0.0, hi=1.0)
     lo = diagram["latitude_lower"].values
     hi = diagram["latitude_upper"].values
     zone = np.abs(np.sin(np.radians(hi)) - np.sin(np.radians(lo)))
     vals = diagram.values
+    resolved = diagram["resolved"].values if "resolved" in diagram.coords else np.ones(lo.size, dtype=bool)
     out = {"north": {}, "south": {}}
     for L in boundaries_deg:
         for pole, sel in (("north", lo >= L - 1e-9), ("south", hi <= -L + 1e-9)):
@@ -488,6 +501,8 @@ def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
             den = a.sum(axis=0)
             with np.errstate(invalid="ignore", divide="ignore"):
                 m = np.where((den > 0) & (den >= min_coverage * total), num / np.where(den > 0, den, 1.0), np.nan)
+            if zone[sel][resolved[sel]].sum() < min_coverage * total:  # a band beyond the resolution
+                m = np.full_like(m, np.nan)
             out[pole][float(L)] = xr.DataArray(
                 m, dims=("rotation",), coords={"rotation": diagram["rotation"],
                                                "rotation_time": diagram["rotation_time"]},

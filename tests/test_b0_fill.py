@@ -138,3 +138,31 @@ def test_filled_diagram_is_exact_for_fields_linear_in_time():
     means = band_cap_means(filled)
     whole = band_cap_means(da.copy(data=truth))
     assert np.allclose(means["north"][60.0].values[inner], whole["north"][60.0].values[inner], atol=1e-12)
+
+
+def test_unresolved_polar_bins_are_not_used_and_give_no_band_mean():
+    # a bin measured in under 15 % of the rotations (beyond the image resolution) is filled from the
+    # resolved bin below it, and a band made only of such bins has no mean (regression only)
+    import xarray as xr
+
+    from pipeline.aggregator import band_cap_means, filled_diagram
+    from pipeline.timeutil import from_decimal_year
+
+    edges = np.array([-90.0, -85.0, -80.0, 80.0, 85.0, 90.0])
+    years = 2040.0 + np.arange(20) * ROTATION_YEARS
+    vals = np.full((5, 20), np.nan)
+    vals[3] = 2.0           # 80-85 N: always seen
+    vals[4, 0] = 50.0       # 85-90 N: seen once (5 %), a noisy outlier
+    vals[1] = -2.0          # 80-85 S
+    vals[0] = -3.0          # 85-90 S: always seen
+    da = xr.DataArray(vals, dims=("latitude", "rotation"), coords={
+        "latitude": 0.5 * (edges[1:] + edges[:-1]), "latitude_lower": ("latitude", edges[:-1]),
+        "latitude_upper": ("latitude", edges[1:]), "rotation": np.arange(20),
+        "rotation_time": ("rotation", from_decimal_year(years))})
+    f = filled_diagram(da, min_abs_latitude_deg=80.0)
+    assert list(f["resolved"].values) == [True, True, False, True, False]
+    assert np.allclose(f.values[4], 2.0)  # extended from 80-85, the outlier dropped
+    bands = band_cap_means(f, boundaries_deg=(80.0, 85.0))
+    assert np.isnan(bands["north"][85.0].values).all()
+    assert np.allclose(bands["south"][85.0].values, -3.0)
+    assert np.allclose(bands["north"][80.0].values, 2.0)

@@ -68,8 +68,10 @@ def test_closed_loop_store_reversals_within_two_rotations(store_path, capsys):
     # dipole (N - S)/2 with equal amplitudes crosses midway between the poles (symmetry of tanh)
     assert abs(out["dipole"]["final"]["time"] - 0.5 * (T_NORTH + T_SOUTH)) <= 2 * ROT_YR
     # per-band epochs: the field is separable, so every cap boundary reverses with its pole. Bands
-    # 55-75 deg must be within two rotations; the 80-85 deg bands hold few pixels of a 96-px image
-    # (regression only: if a reversal is placed there, its interval must hold the truth)
+    # 55-75 deg must be within two rotations; the 80-85 deg bands hold few pixels of a 96-px image and
+    # are filled from the seasons that see them (default B0 method "fill"), so they may have no epoch;
+    # one that is placed must also be within two rotations (its bootstrap interval covers the noise
+    # only, not the error of filling the hidden season)
     assert sorted(out["bands"]["north"], key=float) == ["55", "60", "65", "70", "75", "80", "85"]
     for pole, truth in (("north", T_NORTH), ("south", T_SOUTH)):
         for boundary, res in out["bands"][pole].items():
@@ -77,7 +79,7 @@ def test_closed_loop_store_reversals_within_two_rotations(store_path, capsys):
             if float(boundary) <= 75.0:
                 assert abs(res["final"]["time"] - truth) <= 2 * ROT_YR, (pole, boundary, res["final"])
             elif res["final"] is not None:
-                assert res["final"]["low"] <= truth <= res["final"]["high"], (pole, boundary, res["final"])
+                assert abs(res["final"]["time"] - truth) <= 2 * ROT_YR, (pole, boundary, res["final"])
 
 
 def test_series_netcdf_and_csv_round_trip(store_path, tmp_path, capsys):
