@@ -24,6 +24,7 @@ import numpy as np
 from pipeline.config import MeasureSettings
 from pipeline.projection import cap_area_m2, surface_points
 from pipeline.reader import Frame, FrameError, read_frame
+from pipeline.timeutil import iso_time
 
 __all__ = ["CapStats", "FrameRecord", "JSON_KEYS", "cap_statistics", "measure_frame", "measure_file",
            "skipped_record", "profile_edges_deg"]
@@ -186,10 +187,6 @@ def skipped_record(path, reason: str, time: str | None = None) -> FrameRecord:
     return FrameRecord(file=str(path), status="skipped", reason=" ".join(str(reason).split()), time=time)
 
 
-def _iso(t: np.datetime64) -> str:
-    return np.datetime_as_string(t.astype("datetime64[ms]"), unit="ms") + "Z"
-
-
 def _carrington_rotation(t: np.datetime64) -> float:
     from astropy.time import Time
     from sunpy.coordinates.sun import carrington_rotation_number
@@ -250,7 +247,7 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
     with np.errstate(invalid="ignore", divide="ignore"):
         prof_mean = np.where(prof_w > 0, prof_wb / np.where(prof_w > 0, prof_w, 1.0), np.nan)
     return FrameRecord(
-        file=hdr.path, status="ok", reason=None, time=_iso(hdr.time), b0_deg=obs.b0_deg,
+        file=hdr.path, status="ok", reason=None, time=iso_time(hdr.time), b0_deg=obs.b0_deg,
         north_br_gauss=north.br_gauss, south_br_gauss=south.br_gauss,
         north_flux_mx=north.flux_mx, south_flux_mx=south.flux_mx,
         north_coverage=north.coverage, south_coverage=south.coverage,

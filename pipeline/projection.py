@@ -340,9 +340,11 @@ def _refine_limb_area(geometry, observer, window, ux, uy, uz, area, mu, on_disk,
     return area
 
 
-def _clamped_latitude_deg(geometry, observer, window):
-    """Latitude of each ray's point on the sphere, or of its nearest limb point off the disk."""
-    ux, uy, uz, _ = ray_directions(geometry, window)
+def _clamped_latitude_deg(ux, uy, uz, observer):
+    """Latitude of each ray's point on the sphere, or of its nearest limb point off the disk.
+
+    Returns the latitude (deg), sin of the ray's angle from disk centre, and sin of the limb's.
+    """
     big_d, r = float(observer.distance_m), float(observer.rsun_m)
     c = -uz
     disc = np.maximum(r * r - big_d * big_d * (1.0 - c * c), 0.0)
@@ -351,9 +353,8 @@ def _clamped_latitude_deg(geometry, observer, window):
     norm = np.sqrt(px * px + py * py + pz * pz)
     b0 = np.deg2rad(observer.b0_deg)
     z = (py * np.cos(b0) + pz * np.sin(b0)) / norm
-    sin_limb = r / big_d
     sin_rho = np.sqrt(np.maximum(1.0 - c * c, 0.0))
-    return np.rad2deg(np.arcsin(np.clip(z, -1, 1))), sin_rho, sin_limb
+    return np.rad2deg(np.arcsin(np.clip(z, -1, 1))), sin_rho, r / big_d
 
 
 def plan_windows(geometry: ImageGeometry, observer: Observer, min_abs_latitude_deg: float,
@@ -385,18 +386,9 @@ def plan_windows(geometry: ImageGeometry, observer: Observer, min_abs_latitude_d
     n_rows, n_cols = int(np.ceil(ny / step)), int(np.ceil(nx / step))
     cy = np.minimum(np.arange(n_rows) * step + (step - 1) / 2.0, ny - 1)
     cx = np.minimum(np.arange(n_cols) * step + (step - 1) / 2.0, nx - 1)
-    # sample on the coarse centres through a tiny synthetic geometry: shift crpix, scale cd
     cd = np.asarray(geometry.cd_deg, dtype=float)
-    coarse = ImageGeometry(
-        shape=(n_rows, n_cols),
-        crpix=((geometry.crpix[0] - (step - 1) / 2.0) / step, (geometry.crpix[1] - (step - 1) / 2.0) / step),
-        cd_deg=tuple(map(tuple, cd * step)),
-        crval_deg=geometry.crval_deg, lonpole_deg=geometry.lonpole_deg,
-        projection=geometry.projection, wcs=geometry.wcs)
-    if geometry.projection == "TAN":
-        lat, sin_rho, sin_limb = _clamped_latitude_deg(coarse, observer, Window(0, n_rows, 0, n_cols))
-    else:  # sample the real WCS at the coarse centres
-        lat, sin_rho, sin_limb = _clamped_latitude_wcs(geometry, observer, cy, cx)
+    ux, uy, uz, _ = rays_at(geometry, cy[:, None], cx[None, :])  # any projection
+    lat, sin_rho, sin_limb = _clamped_latitude_deg(ux, uy, uz, observer)
     cell_rad = np.deg2rad(np.sqrt(abs(np.linalg.det(cd)))) * step
     near = sin_rho <= sin_limb + 2.0 * cell_rad
     flagged = near & (np.abs(lat) >= min_abs_latitude_deg)
@@ -412,19 +404,6 @@ def plan_windows(geometry: ImageGeometry, observer: Observer, min_abs_latitude_d
         windows.append(Window(int(k * step), int(min((k + 1) * step, ny)),
                               int(cols[0] * step), int(min((cols[-1] + 1) * step, nx))))
     return windows
-
-
-def _clamped_latitude_wcs(geometry, observer, cy, cx):
-    cols, rows = np.meshgrid(cx, cy)
-    u = _hpc_unit_vectors(geometry.wcs, cols, rows)
-    big_d, r = float(observer.distance_m), float(observer.rsun_m)
-    c = -u[2]
-    disc = np.maximum(r * r - big_d * big_d * (1.0 - c * c), 0.0)
-    d = big_d * c - np.sqrt(disc)
-    p = np.stack([d * u[0], d * u[1], big_d + d * u[2]])
-    b0 = np.deg2rad(observer.b0_deg)
-    z = (p[1] * np.cos(b0) + p[2] * np.sin(b0)) / np.linalg.norm(p, axis=0)
-    return np.rad2deg(np.arcsin(np.clip(z, -1, 1))), np.sqrt(np.maximum(1 - c * c, 0)), r / big_d
 
 
 def cap_area_m2(rsun_m: float, cap_latitude_deg: float) -> float:

@@ -13,6 +13,7 @@ reason; nothing else escapes :func:`read_frame` for bad input.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import warnings
 from dataclasses import dataclass, field
@@ -311,6 +312,16 @@ def _header_from_hdu_quiet(path, hdu, index, shape) -> FrameHeader:
                        notes, index)
 
 
+@contextlib.contextmanager
+def _opened_image(path, settings: MeasureSettings):
+    """Open, pick the image HDU, check its declared size and read its header; yields (hdu, FrameHeader)."""
+    hdul, size = _open(os.fspath(path))
+    with hdul:
+        index, hdu = _pick_hdu(hdul, settings.hdu)
+        shape = _check_size(hdu, size, settings.max_image_pixels)
+        yield hdu, _header_from_hdu(path, hdu, index, shape)
+
+
 def read_header(path: str | os.PathLike, settings: MeasureSettings | None = None) -> FrameHeader:
     """Read and validate only the header of a magnetogram.
 
@@ -320,11 +331,8 @@ def read_header(path: str | os.PathLike, settings: MeasureSettings | None = None
         With a one-line reason for any unusable file.
     """
     settings = settings or MeasureSettings()
-    hdul, size = _open(os.fspath(path))
-    with hdul:
-        index, hdu = _pick_hdu(hdul, settings.hdu)
-        shape = _check_size(hdu, size, settings.max_image_pixels)
-        return _header_from_hdu(path, hdu, index, shape)
+    with _opened_image(path, settings) as (_hdu, header):
+        return header
 
 
 def _read_rows(hdu, r0, r1, c0, c1, squeeze_axes) -> np.ndarray:
@@ -363,12 +371,8 @@ def read_frame(path: str | os.PathLike, settings: MeasureSettings | None = None,
     if region not in ("full", "caps"):
         raise ValueError(f"region: got {region!r}; valid choices are 'caps', 'full'")
     settings = settings or MeasureSettings()
-    hdul, size = _open(os.fspath(path))
-    with hdul:
-        index, hdu = _pick_hdu(hdul, settings.hdu)
-        shape = _check_size(hdu, size, settings.max_image_pixels)
-        header = _header_from_hdu(path, hdu, index, shape)
-        ny, nx = shape
+    with _opened_image(path, settings) as (hdu, header):
+        ny, nx = header.geometry.shape
         if region == "full":
             windows = [Window(0, ny, 0, nx)]
         else:

@@ -6,7 +6,7 @@ import dataclasses
 import sys
 from pathlib import Path
 
-from pipeline.cli import EXIT_OK, EXIT_USAGE
+from pipeline.cli import EXIT_USAGE
 
 __all__ = ["add_parser", "run", "demo", "print_outcome"]
 
@@ -131,5 +131,4 @@ def demo(args) -> int:
         store=str(out / "store.sqlite"), products_dir=str(out), history=str(out / "forecast_history.jsonl"))
     sections = dict(config.sections)
     sections["run"] = run_settings
-    code = _execute(dataclasses.replace(config, sections=sections))
-    return EXIT_OK if code == EXIT_OK else code
+    return _execute(dataclasses.replace(config, sections=sections))
