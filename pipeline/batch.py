@@ -20,7 +20,6 @@ dask.distributed cluster (``scheduler="tcp://HOST:PORT"``).
 from __future__ import annotations
 
 import concurrent.futures as cf
-import dataclasses
 import fnmatch
 import glob
 import os
@@ -31,7 +30,8 @@ from dataclasses import dataclass, field
 from typing import Callable, Iterable, Iterator
 
 from pipeline.config import ConfigError, MeasureSettings, check_number
-from pipeline.store import MeasuredFile, Store, config_id_of, file_digest, reason_group
+from pipeline.measure import MEASUREMENT_VERSION
+from pipeline.store import MeasuredFile, Store, config_id_of, file_digest, reason_group, settings_mismatch_message
 
 __all__ = ["IngestSettings", "IngestError", "IngestSummary", "DEFAULT_PATTERNS", "scan_paths", "hash_files",
            "measure_files", "ingest"]
@@ -113,7 +113,8 @@ class IngestSummary:
     new_ok, new_skipped : int
         Newly measured contents, by outcome (re-measured ones included).
     remeasured : int
-        Of those, contents measured before with another configuration.
+        Of those, contents measured before under other settings (another
+        configuration or measurement-code version).
     known : int
         Paths whose content was already in the store (unchanged, renamed,
         touched or identical copies).
@@ -128,8 +129,8 @@ class IngestSummary:
     unreadable_reasons : Counter
         Grouped reasons of the files not stored.
     stale_config : int
-        Current records of another configuration left as they were (not
-        under the scanned paths).
+        Current records of other settings left as they were (not under the
+        scanned paths).
     elapsed_s : float
         Wall time (seconds).
     """
@@ -166,7 +167,7 @@ class IngestSummary:
             why = ", ".join(f"{n} {r}" for r, n in self.unreadable_reasons.most_common())
             text += f", {self.unreadable} not stored ({why}; tried again next run)"
         if self.stale_config:
-            text += f", {self.stale_config} records of another configuration not found under the given paths"
+            text += f", {self.stale_config} records of other settings not found under the given paths"
         return text
 
 
@@ -388,18 +389,9 @@ class _Progress:
 
 
 # -- the driver -----------------------------------------------------------------------------------
-def _config_mismatch_message(store: Store, settings: MeasureSettings, others: dict) -> str:
-    now = dataclasses.asdict(settings)
-    parts = []
-    for cid, n in sorted(others.items(), key=lambda kv: -kv[1]):
-        old = store.config_settings(cid) or {}
-        diff = [f"measure.{k} {old.get(k)!r} -> {now.get(k)!r}" for k in sorted(set(old) | set(now))
-                if old.get(k) != now.get(k)]
-        parts.append(f"{n} with {', '.join(diff) or 'another configuration'}")
-    total = sum(others.values())
-    return (f"store {store.path} holds {total} records measured with another configuration ({'; '.join(parts)}); "
-            f"they must be measured again: run with --remeasure, or use the configuration the store was built "
-            f"with, or a new store")
+def _foreign_records(store: Store, config_id: str) -> dict:
+    """Current records not measured under ``config_id`` by this measurement code: (config, version) -> count."""
+    return {k: n for k, n in store.settings_groups().items() if k != (config_id, MEASUREMENT_VERSION)}
 
 
 def _chunks(it: Iterator, size: int) -> Iterator[list]:
@@ -431,8 +423,10 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         ``tcp://HOST:PORT`` of a dask.distributed scheduler; None runs
         ``settings.worker_count`` local processes.
     remeasure : bool
-        Measure again files whose record was made with another measure
-        configuration; without it such records make the ingest refuse
+        Measure again files whose record was made under other settings
+        (another measure configuration or measurement-code version,
+        :data:`pipeline.measure.MEASUREMENT_VERSION`); without it such
+        records make the ingest refuse
         (:class:`IngestError`).
     progress : bool
         Draw a progress bar on ``progress_stream`` (default stdout).
@@ -456,9 +450,11 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     settings = settings or IngestSettings()
     summary = IngestSummary()
     config_id = config_id_of(measure)
-    others = store.other_configs(config_id)
+    others = _foreign_records(store, config_id)
     if others and not remeasure:
-        raise IngestError(_config_mismatch_message(store, measure, others))
+        raise IngestError(settings_mismatch_message(
+            store, measure, others, "they must be measured again: run with --remeasure, or use the configuration "
+                                    "the store was built with, or a new store"))
     config_id = store.register_config(measure)
     store.commit()
     scan_paths(paths, settings.patterns)  # validate the paths before starting any worker
@@ -485,7 +481,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         state = store.content_state(digest)
         if state is None:
             return None
-        return state[0] == config_id
+        return state[0] == config_id and state[2] == MEASUREMENT_VERSION
 
     def commit(force: bool = False) -> None:
         nonlocal last_commit
@@ -659,7 +655,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
         if bar:
             bar.close()
         backend.close()
-    stale = store.other_configs(config_id)
+    stale = _foreign_records(store, config_id)
     summary.stale_config = sum(stale.values())
     summary.elapsed_s = time.monotonic() - t_start
     return summary

@@ -10,6 +10,17 @@ area ``2 pi R^2 (1 - sin cap_latitude)``.
 The record also carries a latitude profile (area-weighted mean Br and area
 per latitude bin) for the latitude-time diagram and the B0 profile
 correction of later stages.
+
+Measurement-code version
+------------------------
+:data:`MEASUREMENT_VERSION` names the numbers this code gives.  The store
+keeps it beside every record; records of another version are re-measured by
+``polecast ingest --remeasure`` and refused by every command that reads a
+store, just like records of other measure settings.  Bump it by hand (by
+one) in the same commit as any change to ``pipeline.reader``,
+``pipeline.projection`` or this module that changes a measured value, a skip
+decision or a skip reason; a change that leaves every number the same
+(speed, refactoring, wording of docs) keeps it.
 """
 
 from __future__ import annotations
@@ -26,8 +37,12 @@ from pipeline.projection import cap_area_m2, surface_points
 from pipeline.reader import Frame, FrameError, read_frame
 from pipeline.timeutil import iso_time
 
-__all__ = ["CapStats", "FrameRecord", "JSON_KEYS", "cap_statistics", "measure_frame", "measure_file",
-           "skipped_record", "profile_edges_deg"]
+__all__ = ["CapStats", "FrameRecord", "JSON_KEYS", "MEASUREMENT_VERSION", "cap_statistics", "measure_frame",
+           "measure_file", "skipped_record", "profile_edges_deg"]
+
+#: Version of the numbers the measurement code (reader, projection, measure) gives; an integer bumped by hand
+#: whenever a change to those modules changes a measured value or a skip decision (see the module docstring).
+MEASUREMENT_VERSION = 1
 
 #: The keys of ``polecast measure --format json``, in order.
 JSON_KEYS = (

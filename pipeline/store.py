@@ -4,7 +4,9 @@ Every file an ingest sees is identified by the digest of its bytes
 (BLAKE2b-256), so a renamed file is recognised and a changed file is
 measured again.  Per content the store keeps the path, size, mtime, status,
 skip reason, the full :class:`~pipeline.measure.FrameRecord` (JSON), the
-polecast version and the measure configuration that produced it.  A second
+polecast version, the measurement-code version
+(:data:`pipeline.measure.MEASUREMENT_VERSION`) and the measure configuration
+that produced it.  A second
 table maps every path seen to its size, mtime and digest, so a re-run hashes
 only files whose ``(size, mtime)`` changed.
 
@@ -15,13 +17,27 @@ nothing half-written)::
     meta(key, value)                      schema version, digest algorithm, created
     configs(config_id, settings)          measure settings (JSON) by their digest
     files(digest, path, size, mtime_ns, status, reason, time, record,
-          version, config_id, measured_utc)
+          version, config_id, measured_utc, measure_version)
     paths(path, size, mtime_ns, digest, seen_utc)
+
+Schema version 2 added ``files.measure_version``.  A store of schema 1 is
+upgraded when it is opened for writing: the column is added with NULL
+("unknown") in every existing record, so those records count as made by
+another measurement-code version and must be measured again (``polecast
+ingest --remeasure``).  A schema-1 store opened read-only is read as is, its
+records' version unknown.
 
 A *current* record is one whose content is still referenced by at least one
 path in ``paths`` (a changed file's old content is kept in the ledger but is
 no longer current).  Exports and :meth:`Store.iter_records` give current
 records only, one per content, named by the first (sorted) path holding it.
+
+*The settings of the records*: every current record was measured under one
+measure configuration (its ``config_id``) by one measurement-code version.
+Commands that read a store use only records measured under the settings in
+force: :func:`check_measure_settings` refuses (:class:`StoreSettingsError`)
+when any current record was measured otherwise, and
+``iter_records(measure=...)`` yields only the records of those settings.
 
 Writers take an exclusive ``flock`` on ``STORE.lock`` for their lifetime;
 the kernel drops it when the process dies (even by SIGKILL), so a stale lock
@@ -47,15 +63,17 @@ from typing import Iterable, Iterator
 import numpy as np
 
 from pipeline import __version__
-from pipeline.measure import JSON_KEYS, FrameRecord
+from pipeline.config import ConfigError, MeasureSettings, settings_from_mapping
+from pipeline.measure import JSON_KEYS, MEASUREMENT_VERSION, FrameRecord
 
 __all__ = [
-    "SCHEMA_VERSION", "DIGEST_NAME", "EXTRA_COLUMNS", "StoreError", "StoreLockedError", "MeasuredFile",
-    "Store", "open_store", "file_digest", "config_id_of", "reason_group", "export_csv", "export_netcdf",
-    "records_dataset",
+    "SCHEMA_VERSION", "DIGEST_NAME", "EXTRA_COLUMNS", "StoreError", "StoreLockedError", "StoreSettingsError",
+    "MeasuredFile", "Store", "open_store", "file_digest", "config_id_of", "reason_group", "records_settings",
+    "check_measure_settings", "settings_mismatch_message", "export_csv", "export_netcdf", "records_dataset",
 ]
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+_READABLE_SCHEMAS = (1, 2)
 DIGEST_NAME = "blake2b-256"
 _DIGEST_BYTES = 32
 _MODES = ("r", "a")
@@ -64,7 +82,7 @@ _MODES = ("r", "a")
 EXTRA_COLUMNS = (
     "distance_m", "hgln_deg", "crln_deg", "rsun_m", "carrington_rotation", "observer_source", "instrument",
     "cap_latitude_deg", "mu_min", "notes", "digest", "size_bytes", "polecast_version", "config_id",
-    "measured_utc",
+    "measured_utc", "measurement_version",
 )
 
 _SCHEMA = """
@@ -81,7 +99,8 @@ CREATE TABLE IF NOT EXISTS files(
     record TEXT NOT NULL,
     version TEXT NOT NULL,
     config_id TEXT NOT NULL,
-    measured_utc TEXT NOT NULL
+    measured_utc TEXT NOT NULL,
+    measure_version INTEGER
 );
 CREATE INDEX IF NOT EXISTS files_status_time ON files(status, time);
 CREATE TABLE IF NOT EXISTS paths(
@@ -94,6 +113,9 @@ CREATE TABLE IF NOT EXISTS paths(
 CREATE INDEX IF NOT EXISTS paths_digest ON paths(digest);
 """
 
+#: SQL condition: the record ``f`` is current (some path still holds its content)
+_CURRENT = "EXISTS (SELECT 1 FROM paths p WHERE p.digest = f.digest)"
+
 
 class StoreError(RuntimeError):
     """The store cannot be opened or used; ``str(exc)`` says why and what to do."""
@@ -101,6 +123,15 @@ class StoreError(RuntimeError):
 
 class StoreLockedError(StoreError):
     """Another process is writing to the store."""
+
+
+class StoreSettingsError(StoreError):
+    """The store's records were measured under other settings than those in force.
+
+    ``str(exc)`` is one line naming the differing settings, the records'
+    value and the value in force (``measure.cap_latitude_deg 60.0 (records)
+    vs 70.0 (in force)``, or the measurement-code versions), and the fix.
+    """
 
 
 @dataclass(frozen=True)
@@ -118,6 +149,9 @@ class MeasuredFile:
         Hex BLAKE2b-256 of the bytes.
     record : dict
         :meth:`FrameRecord.to_dict` of the measurement.
+    measure_version : int or None
+        :data:`pipeline.measure.MEASUREMENT_VERSION` of the code that
+        measured it (set by the worker; None: unknown).
     """
 
     path: str
@@ -125,6 +159,7 @@ class MeasuredFile:
     mtime_ns: int
     digest: str
     record: dict
+    measure_version: int | None = MEASUREMENT_VERSION
 
 
 def file_digest(path: str | os.PathLike) -> str:
@@ -156,8 +191,15 @@ def _settings_dict(settings) -> dict:
 
 
 def config_id_of(settings) -> str:
-    """Short digest naming a measure configuration (16 hex digits of BLAKE2b of its canonical JSON)."""
-    return hashlib.blake2b(_canonical_json(_settings_dict(settings)).encode(), digest_size=8).hexdigest()
+    """Short digest naming a measure configuration (16 hex digits of BLAKE2b of its canonical JSON).
+
+    Settings are identified by value: a whole number and the same number as a
+    float (``cap_latitude_deg = 70`` or ``70.0`` in TOML) name one
+    configuration, so numbers enter the digest as floats.
+    """
+    canon = {k: float(v) if isinstance(v, int) and not isinstance(v, bool) else v
+             for k, v in _settings_dict(settings).items()}
+    return hashlib.blake2b(_canonical_json(canon).encode(), digest_size=8).hexdigest()
 
 
 def reason_group(reason: str | None) -> str:
@@ -198,6 +240,9 @@ class Store:
         self.mode = mode
         self._conn = conn
         self._lock_fd = lock_fd
+        cols = {row[1] for row in conn.execute("PRAGMA table_info(files)")}
+        # a schema-1 store read as is: its records' measurement version is unknown (NULL)
+        self._mv = "f.measure_version" if "measure_version" in cols else "NULL"
 
     # -- life cycle -------------------------------------------------------------------------------
     def __enter__(self) -> "Store":
@@ -241,18 +286,31 @@ class Store:
     def add(self, results: Iterable[MeasuredFile], config_id: str, version: str = __version__) -> int:
         """Insert or replace the records of measured files and map their paths (no commit).
 
+        Each record is stored with its ``measure_version`` (the version of
+        the code that measured it, :attr:`MeasuredFile.measure_version`).
+        Only ``ok`` and ``skipped`` records are stored (an ``error`` record is
+        not a result: the file is tried again next run).
+
         Returns the number of results written.
+
+        Raises
+        ------
+        ValueError
+            A record whose status is neither ``ok`` nor ``skipped``.
         """
         self._need_write()
         now = _utc_now()
         n = 0
         for r in results:
             rec = r.record
+            if rec["status"] not in ("ok", "skipped"):
+                raise ValueError(f"record of {r.path}: status {rec['status']!r} is not stored; only 'ok' and "
+                                 f"'skipped' records are (an error is tried again next run)")
             self._conn.execute(
                 "INSERT OR REPLACE INTO files(digest, path, size, mtime_ns, status, reason, time, record, version,"
-                " config_id, measured_utc) VALUES (?,?,?,?,?,?,?,?,?,?,?)",
+                " config_id, measured_utc, measure_version) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
                 (r.digest, r.path, int(r.size), int(r.mtime_ns), rec["status"], rec.get("reason"), rec.get("time"),
-                 _canonical_json(rec), version, config_id, now))
+                 _canonical_json(rec), version, config_id, now, r.measure_version))
             self._link(r.path, r.size, r.mtime_ns, r.digest, now)
             n += 1
         return n
@@ -288,10 +346,15 @@ class Store:
             return None
         return row[2]
 
-    def content_state(self, digest: str) -> tuple[str, str] | None:
-        """``(config_id, version)`` of the record for this content, or None if never measured."""
-        row = self._conn.execute("SELECT config_id, version FROM files WHERE digest = ?", (digest,)).fetchone()
-        return None if row is None else (row[0], row[1])
+    def content_state(self, digest: str) -> tuple[str, str, int | None] | None:
+        """``(config_id, polecast version, measurement version)`` of this content's record; None if never measured.
+
+        The measurement version is None when unknown (a record kept from a
+        schema-1 store).
+        """
+        row = self._conn.execute(f"SELECT f.config_id, f.version, {self._mv} FROM files f WHERE f.digest = ?",
+                                 (digest,)).fetchone()
+        return None if row is None else (row[0], row[1], row[2])
 
     def known_digests(self) -> Iterator[str]:
         """Every content digest in the ledger (current or not)."""
@@ -303,48 +366,72 @@ class Store:
         row = self._conn.execute("SELECT settings FROM configs WHERE config_id = ?", (config_id,)).fetchone()
         return None if row is None else json.loads(row[0])
 
-    def other_configs(self, config_id: str) -> dict[str, int]:
-        """Current records made with a configuration other than ``config_id``: config id -> count."""
+    def settings_groups(self) -> dict[tuple[str, int | None], int]:
+        """Current records (any status) by the settings they were measured under.
+
+        Returns
+        -------
+        dict
+            ``(config_id, measurement version) -> count``; the version is None
+            where unknown (records of a schema-1 store).
+        """
         rows = self._conn.execute(
-            "SELECT f.config_id, COUNT(*) FROM files f WHERE f.config_id != ? AND EXISTS"
-            " (SELECT 1 FROM paths p WHERE p.digest = f.digest) GROUP BY f.config_id", (config_id,)).fetchall()
-        return {cid: n for cid, n in rows}
+            f"SELECT f.config_id, {self._mv}, COUNT(*) FROM files f WHERE {_CURRENT} GROUP BY 1, 2").fetchall()
+        return {(cid, mv): n for cid, mv, n in rows}
 
     # -- reading ----------------------------------------------------------------------------------
-    def _current(self, status: str | None, columns: str):
-        where = "" if status is None else "WHERE f.status = ?"
-        args = () if status is None else (status,)
+    def _where(self, status: str | None, measure: MeasureSettings | None) -> tuple[str, tuple]:
+        """SQL conditions on ``files f`` for a status and the settings in force (None: any)."""
+        conds, args = [], []
+        if status is not None:
+            conds.append("f.status = ?")
+            args.append(status)
+        if measure is not None:
+            conds.append(f"f.config_id = ? AND {self._mv} = ?")
+            args += [config_id_of(measure), MEASUREMENT_VERSION]
+        return " AND ".join(conds), tuple(args)
+
+    def _current(self, status: str | None, columns: str, measure: MeasureSettings | None = None):
+        cond, args = self._where(status, measure)
+        where = f"WHERE {cond}" if cond else ""
         sql = (f"SELECT {columns}, (SELECT MIN(p.path) FROM paths p WHERE p.digest = f.digest) AS cur"
                f" FROM files f {where} ORDER BY f.time, f.digest")
         for row in self._conn.execute(sql, args):
             if row[-1] is not None:
                 yield row
 
-    def iter_records(self, status: str | None = "ok") -> Iterator[FrameRecord]:
+    def iter_records(self, status: str | None = "ok",
+                     measure: MeasureSettings | None = None) -> Iterator[FrameRecord]:
         """Current records in time order (ties by digest), one per content.
 
         Parameters
         ----------
         status : {"ok", "skipped"} or None
             Which records; None for all.
+        measure : MeasureSettings, optional
+            The settings in force: yield only records measured under them by
+            this measurement-code version.  Check the store first with
+            :func:`check_measure_settings`, which refuses a store holding
+            other records; None yields every record.
 
         Yields
         ------
         FrameRecord
             With ``file`` set to the content's current path.
         """
-        for rec_json, cur in self._current(status, "f.record"):
+        for rec_json, cur in self._current(status, "f.record", measure):
             d = json.loads(rec_json)
             d["file"] = cur
             yield FrameRecord.from_dict(d)
 
-    def rows(self, status: str | None = "ok") -> Iterator[dict]:
+    def rows(self, status: str | None = "ok", measure: MeasureSettings | None = None) -> Iterator[dict]:
         """Flat export rows: :data:`~pipeline.measure.JSON_KEYS` then :data:`EXTRA_COLUMNS`.
 
-        ``notes`` is joined with ``"; "``; ``file`` is the current path.
+        ``notes`` is joined with ``"; "``; ``file`` is the current path;
+        ``measure`` as in :meth:`iter_records`.
         """
-        cols = "f.record, f.digest, f.size, f.version, f.config_id, f.measured_utc"
-        for rec_json, digest, size, version, cid, measured, cur in self._current(status, cols):
+        cols = f"f.record, f.digest, f.size, f.version, f.config_id, f.measured_utc, {self._mv}"
+        for rec_json, digest, size, version, cid, measured, mv, cur in self._current(status, cols, measure):
             d = json.loads(rec_json)
             d["file"] = cur
             row = {k: _finite(d.get(k)) for k in JSON_KEYS}
@@ -352,16 +439,14 @@ class Store:
                 row[k] = _finite(d.get(k))
             row["notes"] = "; ".join(d.get("notes") or ())
             row.update(digest=digest, size_bytes=size, polecast_version=version, config_id=cid,
-                       measured_utc=measured)
+                       measured_utc=measured, measurement_version=mv)
             yield row
 
-    def count(self, status: str | None = "ok") -> int:
-        """Number of current records with this status (None: all)."""
-        where = "" if status is None else "AND f.status = ?"
-        args = () if status is None else (status,)
-        return self._conn.execute(
-            f"SELECT COUNT(*) FROM files f WHERE EXISTS (SELECT 1 FROM paths p WHERE p.digest = f.digest) {where}",
-            args).fetchone()[0]
+    def count(self, status: str | None = "ok", measure: MeasureSettings | None = None) -> int:
+        """Number of current records with this status (None: all); ``measure`` as in :meth:`iter_records`."""
+        cond, args = self._where(status, measure)
+        return self._conn.execute(f"SELECT COUNT(*) FROM files f WHERE {_CURRENT}{' AND ' + cond if cond else ''}",
+                                  args).fetchone()[0]
 
     def summary(self) -> dict:
         """Counts and ranges of the ledger.
@@ -374,10 +459,11 @@ class Store:
             :func:`reason_group`), ``superseded`` (old contents of changed
             files), ``paths``, ``first_time``, ``last_time`` (ISO, ok
             records), ``configs`` (id -> count of current records),
-            ``versions`` (polecast version -> count).
+            ``versions`` (polecast version -> count), ``measurement_versions``
+            (measurement-code version or None -> count).
         """
         c = self._conn
-        cur_where = "EXISTS (SELECT 1 FROM paths p WHERE p.digest = f.digest)"
+        cur_where = _CURRENT
         ok = self.count("ok")
         skipped = self.count("skipped")
         total = c.execute("SELECT COUNT(*) FROM files").fetchone()[0]
@@ -388,6 +474,7 @@ class Store:
                                 ).fetchone()
         configs = dict(c.execute(f"SELECT config_id, COUNT(*) FROM files f WHERE {cur_where} GROUP BY config_id"))
         versions = dict(c.execute(f"SELECT version, COUNT(*) FROM files f WHERE {cur_where} GROUP BY version"))
+        mversions = dict(c.execute(f"SELECT {self._mv}, COUNT(*) FROM files f WHERE {cur_where} GROUP BY 1"))
         meta = dict(c.execute("SELECT key, value FROM meta"))
         return {
             "store": str(self.path), "schema_version": int(meta.get("schema_version", SCHEMA_VERSION)),
@@ -395,7 +482,162 @@ class Store:
             "skip_reasons": dict(reasons.most_common()), "superseded": total - ok - skipped,
             "paths": c.execute("SELECT COUNT(*) FROM paths").fetchone()[0],
             "first_time": first, "last_time": last, "configs": configs, "versions": versions,
+            "measurement_versions": mversions,
         }
+
+
+# -- the settings of the records ------------------------------------------------------------------
+_DEFAULT_MEASURE = MeasureSettings()
+
+
+def _version_text(mv) -> str:
+    return "unknown" if mv is None else str(mv)
+
+
+def _stored_settings(store: Store, config_id: str) -> dict:
+    """The settings stored under ``config_id`` (StoreSettingsError when the store lacks them)."""
+    d = store.config_settings(config_id)
+    if d is None:
+        raise StoreSettingsError(f"store {store.path}: the measure settings of configuration {config_id} are not "
+                                 f"recorded; measure the files again into a new store")
+    return d
+
+
+def _show(d: dict, k: str) -> str:
+    """A setting as the user wrote it, a float setting as a float (``70`` -> ``70.0``); "absent" if missing."""
+    if k not in d:
+        return "absent"
+    v = d[k]
+    if isinstance(getattr(_DEFAULT_MEASURE, k, None), float) and isinstance(v, int) and not isinstance(v, bool):
+        v = float(v)
+    return repr(v)
+
+
+def _settings_diff(records: dict, in_force: dict) -> list[str]:
+    """``measure.KEY RECORDS (records) vs IN_FORCE (in force)`` for every key whose value differs."""
+    return [f"measure.{k} {_show(records, k)} (records) vs {_show(in_force, k)} (in force)"
+            for k in sorted(set(records) | set(in_force)) if records.get(k, ...) != in_force.get(k, ...)]
+
+
+def settings_mismatch_message(store: Store, measure: MeasureSettings, groups: dict, fix: str) -> str:
+    """One line: how many records were measured under which other settings than ``measure``, and ``fix``.
+
+    Parameters
+    ----------
+    store : Store
+    measure : MeasureSettings
+        The settings in force.
+    groups : dict
+        ``(config_id, measurement version) -> count`` of the other records
+        (:meth:`Store.settings_groups` without the settings in force).
+    fix : str
+        What to do (appended after ``"; "``).
+    """
+    now = dataclasses.asdict(measure)
+    cid_now = config_id_of(measure)
+    parts = []
+    for (cid, mv), n in sorted(groups.items(), key=lambda kv: (-kv[1], kv[0][0], _version_text(kv[0][1]))):
+        diff = [] if cid == cid_now else (_settings_diff(_stored_settings(store, cid), now)
+                                          or [f"configuration {cid} (records) vs {cid_now} (in force)"])
+        if mv != MEASUREMENT_VERSION:
+            diff.append(f"measurement code version {_version_text(mv)} (records) vs {MEASUREMENT_VERSION} "
+                        f"(in force)" + (" (recorded before polecast kept versions)" if mv is None else ""))
+        parts.append(f"{n} with {', '.join(diff)}")
+    total = sum(groups.values())
+    return (f"store {store.path} holds {total} record{'s' if total != 1 else ''} measured under other settings "
+            f"than those in force ({'; '.join(parts)}); {fix}")
+
+
+def records_settings(store: Store) -> MeasureSettings:
+    """The single measure configuration of the store's current records.
+
+    Parameters
+    ----------
+    store : Store
+
+    Returns
+    -------
+    MeasureSettings
+        The settings every current record (ok or skipped) was measured
+        under; for a store without records, the defaults (it has no settings
+        of its own, and an ingest without a configuration would use them).
+
+    Raises
+    ------
+    StoreSettingsError
+        The records were measured under several configurations or by
+        several measurement-code versions (each named, with its count), or
+        their settings cannot be rebuilt by this polecast (a key it does not
+        know, or one it has added since).
+    """
+    groups = store.settings_groups()
+    if not groups:
+        return MeasureSettings()
+    cids = sorted({cid for cid, _ in groups}, key=lambda c: -sum(n for (k, _), n in groups.items() if k == c))
+    if len(groups) > 1:
+        first = _stored_settings(store, cids[0])
+        parts = []
+        for (cid, mv), n in sorted(groups.items(), key=lambda kv: -kv[1]):
+            d = _stored_settings(store, cid)
+            what = ", ".join(f"measure.{k} {_show(d, k)}" for k in sorted(set(d) | set(first))
+                             if d.get(k, ...) != first.get(k, ...)) if cid != cids[0] else ""
+            parts.append(f"{n} with configuration {cid}{' (' + what + ')' if what else ''}, measurement code "
+                         f"version {_version_text(mv)}")
+        raise StoreSettingsError(
+            f"store {store.path} holds records measured under several settings ({'; '.join(parts)}); measure "
+            f"them all again under one configuration (`polecast ingest PATHS --store {store.path} --config FILE "
+            f"--remeasure`), or give the configuration to use with --config")
+    stored = _stored_settings(store, cids[0])
+    try:
+        settings = settings_from_mapping(MeasureSettings, "measure", stored)
+    except ConfigError as exc:
+        raise StoreSettingsError(f"store {store.path}: its records were measured under settings this polecast "
+                                 f"cannot use ({exc}); measure them again (`polecast ingest PATHS --store "
+                                 f"{store.path} --remeasure`)") from None
+    if config_id_of(settings) != cids[0]:  # a key added since: its default would be a guess
+        diff = _settings_diff(stored, dataclasses.asdict(settings))
+        raise StoreSettingsError(f"store {store.path}: its records' settings are incomplete for this polecast "
+                                 f"({', '.join(diff)}); measure them again (`polecast ingest PATHS --store "
+                                 f"{store.path} --remeasure`)")
+    return settings
+
+
+def check_measure_settings(store: Store, measure: MeasureSettings | None) -> MeasureSettings:
+    """The measure settings in force for reading ``store``; refuses records measured otherwise.
+
+    Parameters
+    ----------
+    store : Store
+    measure : MeasureSettings or None
+        The settings of the configuration given (its ``[measure]``
+        section); None when no configuration was given: the store's own
+        (:func:`records_settings`) are in force.
+
+    Returns
+    -------
+    MeasureSettings
+        The settings in force; pass them to ``store.iter_records(measure=...)``.
+
+    Raises
+    ------
+    StoreSettingsError
+        A current record was measured under other settings (its
+        configuration id differs) or by another measurement-code version
+        than :data:`pipeline.measure.MEASUREMENT_VERSION`.  An empty store
+        passes.
+    """
+    if measure is None:
+        measure = records_settings(store)
+        fix = (f"measure them again with this polecast (`polecast ingest PATHS --store {store.path} "
+               f"--remeasure`)")
+    else:
+        fix = (f"measure them again under these settings (`polecast ingest PATHS --store {store.path} --config "
+               f"FILE --remeasure`), or leave out --config to use the store's own configuration")
+    want = (config_id_of(measure), MEASUREMENT_VERSION)
+    other = {k: n for k, n in store.settings_groups().items() if k != want}
+    if other:
+        raise StoreSettingsError(settings_mismatch_message(store, measure, other, fix))
+    return measure
 
 
 def _take_lock(path: Path) -> int:
@@ -415,6 +657,16 @@ def _take_lock(path: Path) -> int:
     os.ftruncate(fd, 0)
     os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_utc_now()}".encode(), 0)
     return fd
+
+
+def _upgrade(conn: sqlite3.Connection, version: int) -> None:
+    """Bring a store of an older schema to :data:`SCHEMA_VERSION`, in one transaction."""
+    with conn:
+        if version < 2:  # 1 -> 2: the measurement version, unknown (NULL) for the records kept
+            cols = {row[1] for row in conn.execute("PRAGMA table_info(files)")}
+            if "measure_version" not in cols:
+                conn.execute("ALTER TABLE files ADD COLUMN measure_version INTEGER")
+        conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),))
 
 
 def open_store(path: str | os.PathLike, mode: str = "r") -> Store:
@@ -469,9 +721,12 @@ def open_store(path: str | os.PathLike, mode: str = "r") -> Store:
             conn.close()
             raise StoreError(f"store {path}: not a polecast store ({exc})") from None
         version = int(meta.get("schema_version", 0))
-        if version != SCHEMA_VERSION:
+        if version not in _READABLE_SCHEMAS:
             conn.close()
-            raise StoreError(f"store {path}: schema version {version}, this polecast reads {SCHEMA_VERSION}")
+            raise StoreError(f"store {path}: schema version {version}, this polecast reads "
+                             f"{', '.join(map(str, _READABLE_SCHEMAS))}")
+        if mode == "a" and version < SCHEMA_VERSION:
+            _upgrade(conn, version)
     except BaseException:
         if lock_fd is not None:
             os.close(lock_fd)
@@ -480,14 +735,17 @@ def open_store(path: str | os.PathLike, mode: str = "r") -> Store:
 
 
 # -- export ---------------------------------------------------------------------------------------
-def export_csv(store: Store, stream, status: str | None = "ok") -> int:
-    """Write current records as CSV (header line; ``JSON_KEYS`` then ``EXTRA_COLUMNS``); returns rows written."""
+def export_csv(store: Store, stream, status: str | None = "ok", measure: MeasureSettings | None = None) -> int:
+    """Write current records as CSV (header line; ``JSON_KEYS`` then ``EXTRA_COLUMNS``); returns rows written.
+
+    ``measure`` as in :meth:`Store.iter_records` (None: every record).
+    """
     import csv
 
     writer = csv.DictWriter(stream, fieldnames=list(JSON_KEYS) + list(EXTRA_COLUMNS), lineterminator="\n")
     writer.writeheader()
     n = 0
-    for row in store.rows(status):
+    for row in store.rows(status, measure):
         writer.writerow({k: ("" if v is None else v) for k, v in row.items()})
         n += 1
     return n
@@ -514,6 +772,7 @@ _VAR_ATTRS = {
     "cap_latitude_deg": ("degree", "polar cap boundary |latitude|"),
     "mu_min": ("1", "lowest cosine of the viewing angle used"),
     "size_bytes": ("byte", "file size"),
+    "measurement_version": ("1", "version of the measurement code (-1: unknown)"),
 }
 _TEXT_VARS = {
     "file": "file path", "observer_source": "where the observer geometry came from (header or ephemeris)",
@@ -521,11 +780,13 @@ _TEXT_VARS = {
     "digest": f"{DIGEST_NAME} digest of the file's bytes (hex)", "polecast_version": "polecast version",
     "config_id": "id of the measure configuration", "measured_utc": "when the file was measured (UTC)",
 }
-_INT_VARS = ("north_pixels", "south_pixels", "size_bytes")
+_INT_VARS = ("north_pixels", "south_pixels", "size_bytes", "measurement_version")
 
 
-def records_dataset(store: Store):
+def records_dataset(store: Store, measure: MeasureSettings | None = None):
     """Current ok records as an :class:`xarray.Dataset` on a ``time`` dimension.
+
+    ``measure`` as in :meth:`Store.iter_records` (None: every record).
 
     Numeric columns become float64 variables (int64 for pixel counts and
     sizes) with ``units`` and ``long_name`` attributes; text columns become
@@ -546,7 +807,7 @@ def records_dataset(store: Store):
 
     from pipeline.timeutil import to_datetime64
 
-    n = store.count("ok")
+    n = store.count("ok", measure)
     numeric = [k for k in list(JSON_KEYS) + list(EXTRA_COLUMNS) if k in _VAR_ATTRS]
     arrays = {k: (np.zeros(n, np.int64) if k in _INT_VARS else np.full(n, np.nan)) for k in numeric}
     texts = {k: np.empty(n, dtype=object) for k in _TEXT_VARS}
@@ -555,13 +816,14 @@ def records_dataset(store: Store):
     prof_br = prof_area = None
     profile_ok = True
     i = 0
-    cols = "f.record, f.digest, f.size, f.version, f.config_id, f.measured_utc"
-    for rec_json, digest, size, version, cid, measured, cur in store._current("ok", cols):
+    cols = f"f.record, f.digest, f.size, f.version, f.config_id, f.measured_utc, {store._mv}"
+    for rec_json, digest, size, version, cid, measured, mv, cur in store._current("ok", cols, measure):
         if i >= n:  # pragma: no cover - a writer added rows meanwhile; keep the counted ones
             break
         d = json.loads(rec_json)
         d.update(file=cur, digest=digest, size_bytes=size, polecast_version=version, config_id=cid,
-                 measured_utc=measured, notes="; ".join(d.get("notes") or ()))
+                 measured_utc=measured, notes="; ".join(d.get("notes") or ()),
+                 measurement_version=-1 if mv is None else mv)
         times[i] = to_datetime64(d["time"])
         for k in numeric:
             v = d.get(k)
@@ -621,13 +883,15 @@ def _netcdf_engine() -> str:
                      "(pip install netCDF4), or export with --format csv")
 
 
-def export_netcdf(store: Store, out: str | os.PathLike, engine: str | None = None) -> int:
+def export_netcdf(store: Store, out: str | os.PathLike, engine: str | None = None,
+                  measure: MeasureSettings | None = None) -> int:
     """Write :func:`records_dataset` to a netCDF-4 file; returns the number of frames.
 
-    ``engine`` is an xarray netCDF engine; None picks netCDF4, else h5netcdf.
+    ``engine`` is an xarray netCDF engine; None picks netCDF4, else h5netcdf;
+    ``measure`` as in :meth:`Store.iter_records`.
     """
     engine = engine or _netcdf_engine()
-    ds = records_dataset(store)
+    ds = records_dataset(store, measure)
     encoding = {"time": {"units": "milliseconds since 1970-01-01 00:00:00", "calendar": "proleptic_gregorian",
                          "dtype": "float64"}}
     ds.to_netcdf(out, engine=engine, encoding=encoding)

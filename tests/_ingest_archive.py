@@ -80,3 +80,34 @@ def distinct_copy(src, dst, k: int):
         hdul[-1].header["OBJECT"] = f"Tessaly copy {k}"
         hdul.writeto(dst, overwrite=True)
     return dst
+
+
+def record_store(path, settings=None, n: int = 40, start: int = 0, measure_version=None, t0_year: float = 2030.0):
+    """Add ``n`` simple ok records measured "under" ``settings`` to the store at ``path``; returns ``path``.
+
+    The records are plain FrameRecords (no FITS file behind them), dipole ``6 sin(2 pi (t - 2033) / 22)`` G,
+    one every 0.04 yr from ``t0_year`` (invented demo data), with digests ``start .. start + n - 1`` so that
+    several calls add distinct contents.  ``measure_version`` None takes the code's
+    :data:`pipeline.measure.MEASUREMENT_VERSION`.  Series of them need ``[series] b0_method = "visible"``
+    (they carry no latitude profile).
+    """
+    from pipeline.config import MeasureSettings
+    from pipeline.measure import MEASUREMENT_VERSION, FrameRecord
+    from pipeline.store import MeasuredFile, open_store
+    from pipeline.timeutil import from_decimal_year, iso_time
+
+    settings = settings or MeasureSettings()
+    mv = MEASUREMENT_VERSION if measure_version is None else measure_version
+    results = []
+    for k in range(start, start + n):
+        t = t0_year + 0.04 * k
+        d = 6.0 * np.sin(2 * np.pi * (t - 2033.0) / 22.0)
+        rec = FrameRecord(file=f"kvm_{k:04d}.fits", status="ok", time=iso_time(from_decimal_year(t)), b0_deg=0.0,
+                          north_br_gauss=d, south_br_gauss=-d, north_br_error_gauss=0.2, south_br_error_gauss=0.2,
+                          north_coverage=0.5, south_coverage=0.5, north_pixels=100, south_pixels=100,
+                          cap_latitude_deg=settings.cap_latitude_deg, mu_min=settings.mu_min)
+        results.append(MeasuredFile(rec.file, 1, 1, f"{k:064x}", rec.to_dict(), mv))
+    with open_store(path, "a") as store:
+        store.add(results, store.register_config(settings))
+        store.commit()
+    return path

@@ -160,8 +160,10 @@ def test_changed_configuration_detected_and_remeasured(archive, tmp_path):
     store = tmp_path / "s"
     _ingest(good[:5], store)
     seventy = MeasureSettings(cap_latitude_deg=70.0)
-    with pytest.raises(IngestError, match=r"5 records measured with another configuration \(5 with "
-                                          r"measure.cap_latitude_deg 60.0 -> 70.0\).*--remeasure"):
+    # wording of the refusal: our own (regression only); it names both values and the fix
+    with pytest.raises(IngestError, match=r"5 records measured under other settings than those in force \(5 with "
+                                          r"measure.cap_latitude_deg 60.0 \(records\) vs 70.0 \(in force\)\)"
+                                          r".*--remeasure"):
         _ingest(good[:5], store, seventy)
     s = _ingest(good[:4], store, seventy, remeasure=True)
     assert (s.new_ok, s.remeasured, s.stale_config) == (4, 4, 1)

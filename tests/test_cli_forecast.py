@@ -177,3 +177,21 @@ def test_store_route_after_the_reversal(tmp_path, capsys):
     assert main(["forecast", "--calibration", str(cal), "--store", str(tmp_path / "absent.polecast"),
                  "--sunspots", str(ssn)]) == 2
     assert "cannot take the precursor" in capsys.readouterr().err
+
+
+def test_store_route_refuses_records_of_other_settings(tmp_path, capsys):
+    """Issue 17 (the project's rule; wording regression only): the store's records were measured at the default
+    60-deg cap; a configuration putting 70 deg in force is refused in one line, exit 2."""
+    store, config = _store_with_dipole(tmp_path, 2042.0)
+    config.write_text(config.read_text() + "[measure]\ncap_latitude_deg = 70\n")
+    ssn = tmp_path / "ssn.csv"
+    _sunspots(ssn, 2041.0)
+    cal = tmp_path / "cal.csv"
+    _write_table(cal)
+    assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+                 "--config", str(config)]) == 2
+    cap = capsys.readouterr()
+    lines = cap.err.strip().splitlines()
+    assert cap.out == "" and len(lines) == 1 and "Traceback" not in cap.err
+    assert "measure.cap_latitude_deg 60.0 (records) vs 70.0 (in force)" in lines[0]
+    assert lines[0].startswith(f"polecast forecast: cannot take the precursor from {store}")

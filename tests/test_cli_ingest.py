@@ -13,7 +13,7 @@ import pytest
 from pipeline.cli import main
 from pipeline.measure import JSON_KEYS
 from pipeline.store import open_store
-from tests._ingest_archive import good_archive, hostile_files
+from tests._ingest_archive import good_archive, hostile_files, record_store
 
 
 @pytest.fixture(scope="module")
@@ -110,7 +110,7 @@ def test_changed_configuration_needs_remeasure(archive, tmp_path, capsys):
     cfg = tmp_path / "c.toml"
     cfg.write_text("[measure]\nmu_min = 0.2\n")
     rc, _, err = _run(capsys, "ingest", str(archive), "--store", store, "--config", str(cfg))
-    assert rc == 2 and "measure.mu_min 0.1 -> 0.2" in err and "--remeasure" in err
+    assert rc == 2 and "measure.mu_min 0.1 (records) vs 0.2 (in force)" in err and "--remeasure" in err
     rc, out, _ = _run(capsys, "ingest", str(archive), "--store", store, "--config", str(cfg), "--remeasure",
                       "--workers", "1")
     assert rc == 1 and "7 re-measured" in out and "7 new" in out
@@ -121,3 +121,23 @@ def test_bad_arguments(tmp_path, capsys):
     assert rc == 2 and "no such file or directory" in err
     rc, _, err = _run(capsys, "ingest", str(tmp_path), "--store", str(tmp_path / "s"), "--workers", "-3")
     assert rc == 2 and "ingest.workers: got -3" in err
+
+
+def test_export_uses_only_records_of_the_settings_in_force(tmp_path, capsys):
+    """Issue 17 (the project's rule; wording regression only): export refuses a store holding records of other
+    settings than those in force, in one line with exit 2, for CSV, --skipped and netCDF alike."""
+    from pipeline.config import MeasureSettings
+
+    store = record_store(tmp_path / "s.polecast", MeasureSettings(cap_latitude_deg=70.0), n=4)
+    sixty = tmp_path / "c.toml"
+    sixty.write_text("[measure]\ncap_latitude_deg = 60\n")
+    for extra in ([], ["--skipped"], ["--format", "netcdf", "--out", str(tmp_path / "x.nc")]):
+        rc, out, err = _run(capsys, "export", str(store), "--config", str(sixty), *extra)
+        lines = err.strip().splitlines()
+        assert (rc, out, len(lines)) == (2, "", 1), (extra, err)
+        assert "measure.cap_latitude_deg 70.0 (records) vs 60.0 (in force)" in lines[0]
+    rc, out, _ = _run(capsys, "export", str(store))  # no configuration: the store's own settings
+    assert rc == 0 and [r["cap_latitude_deg"] for r in csv.DictReader(io.StringIO(out))] == ["70.0"] * 4
+    record_store(store, MeasureSettings(), n=2, start=4)  # now two settings: refused without --config too
+    rc, out, err = _run(capsys, "export", str(store))
+    assert rc == 2 and out == "" and "several settings" in err and len(err.strip().splitlines()) == 1

@@ -158,3 +158,19 @@ def test_reversals_usage_errors(tmp_path, capsys):
     assert main(["reversals", "--series", str(tmp_path / "absent.csv")]) == 2
     assert main(["series", str(tmp_path / "absent.polecast"), "--out", str(tmp_path / "x.nc")]) == 2
     assert main(["reversals", "--series", str(path), "--confidence", "2"]) == 2
+
+
+def test_store_route_uses_only_records_of_the_settings_in_force(store_path, tmp_path, capsys):
+    """Issue 17: --config whose [measure] differs from the records' is refused in one line (exit 2); one that
+    matches, or none, reads the records (the rule is the project's own; wording regression only)."""
+    seventy = tmp_path / "seventy.toml"
+    seventy.write_text("[measure]\ncap_latitude_deg = 70\n")
+    assert main(["reversals", str(store_path), "--config", str(seventy)]) == 2
+    cap = capsys.readouterr()
+    lines = cap.err.strip().splitlines()
+    assert cap.out == "" and len(lines) == 1 and lines[0].startswith("polecast reversals: store ")
+    assert "measure.cap_latitude_deg 60.0 (records) vs 70.0 (in force)" in lines[0]
+    same = tmp_path / "same.toml"
+    same.write_text("[measure]\ncap_latitude_deg = 60\n")  # the records' settings (the defaults)
+    assert main(["reversals", str(store_path), "--config", str(same), "--n-bootstrap", "20"]) == 0
+    assert len(_json(capsys)["north"]["crossings"]) == 1

@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import json
 import os
 import signal
 import sqlite3
@@ -17,9 +18,11 @@ import pytest
 
 from pipeline.config import MeasureSettings
 from pipeline.measure import JSON_KEYS, measure_file
-from pipeline.store import (EXTRA_COLUMNS, MeasuredFile, StoreError, StoreLockedError, config_id_of, export_csv,
-                            export_netcdf, file_digest, open_store, reason_group, records_dataset)
-from tests._ingest_archive import good_archive, hostile_files
+from pipeline.measure import MEASUREMENT_VERSION
+from pipeline.store import (EXTRA_COLUMNS, SCHEMA_VERSION, MeasuredFile, StoreError, StoreLockedError,
+                            StoreSettingsError, check_measure_settings, config_id_of, export_csv, export_netcdf,
+                            file_digest, open_store, reason_group, records_dataset, records_settings)
+from tests._ingest_archive import good_archive, hostile_files, record_store
 
 
 def _measured(path, settings=None):
@@ -239,3 +242,141 @@ def test_records_dataset_of_empty_store(tmp_path):
     with open_store(tmp_path / "s") as st:
         ds = records_dataset(st)
     assert ds.sizes["time"] == 0 and "north_br_gauss" in ds
+
+
+# --- the settings of the records (issue 17) --------------------------------------------------------
+# The rule checked here is the project's own (issue 17: "every command that reads a store uses only records
+# measured under the measurement settings in force"); the wording of the messages is regression only.
+
+SIXTY, SEVENTY = MeasureSettings(), MeasureSettings(cap_latitude_deg=70.0)
+
+
+def _one_line(exc) -> str:
+    text = str(exc.value)
+    assert "\n" not in text
+    return text
+
+
+def test_a_whole_number_and_its_float_are_one_configuration():
+    # TOML (toml.io 1.0) reads `70` as an integer and `70.0` as a float: the same setting, one configuration
+    assert config_id_of(MeasureSettings(cap_latitude_deg=70)) == config_id_of(SEVENTY)
+    assert config_id_of(SEVENTY) != config_id_of(SIXTY)
+
+
+def test_empty_store_passes_every_check(tmp_path):
+    with open_store(tmp_path / "s", "a"):
+        pass
+    with open_store(tmp_path / "s") as st:
+        assert records_settings(st) == MeasureSettings()   # no records: no settings of its own, the defaults
+        assert check_measure_settings(st, None) == MeasureSettings()
+        assert check_measure_settings(st, SEVENTY) == SEVENTY
+        assert list(st.iter_records(measure=SEVENTY)) == []
+
+
+def test_records_settings_are_those_the_records_were_measured_under(tmp_path):
+    path = record_store(tmp_path / "s", SEVENTY, n=5)
+    with open_store(path) as st:
+        got = records_settings(st)
+        assert got == SEVENTY and got.cap_latitude_deg == 70.0
+        assert check_measure_settings(st, None) == SEVENTY        # no configuration: the store's own
+        assert check_measure_settings(st, SEVENTY) == SEVENTY
+        assert len(list(st.iter_records(measure=SEVENTY))) == 5
+        with pytest.raises(StoreSettingsError) as exc:
+            check_measure_settings(st, SIXTY)                     # a configuration that differs is refused
+    text = _one_line(exc)
+    assert "5 with measure.cap_latitude_deg 70.0 (records) vs 60.0 (in force)" in text
+    assert "--remeasure" in text and "leave out --config" in text and str(path) in text
+
+
+def test_mixed_settings_are_named_and_filtered(tmp_path):
+    path = record_store(tmp_path / "s", SIXTY, n=6)
+    record_store(path, SEVENTY, n=3, start=6)
+    with open_store(path) as st:
+        with pytest.raises(StoreSettingsError) as exc:
+            records_settings(st)
+        several = _one_line(exc)
+        with pytest.raises(StoreSettingsError) as exc:
+            check_measure_settings(st, None)
+        assert str(exc.value) == several
+        with pytest.raises(StoreSettingsError) as exc:
+            check_measure_settings(st, SEVENTY)
+        against_70 = _one_line(exc)
+        # after the caller checked, iter_records(measure=...) yields only that configuration's records
+        assert [r.cap_latitude_deg for r in st.iter_records(measure=SEVENTY)] == [70.0] * 3
+        assert [r.cap_latitude_deg for r in st.iter_records(measure=SIXTY)] == [60.0] * 6
+        assert len(list(st.iter_records())) == 9                   # no settings given: every record
+        assert st.count("ok", SEVENTY) == 3 and st.settings_groups() == {
+            (config_id_of(SIXTY), MEASUREMENT_VERSION): 6, (config_id_of(SEVENTY), MEASUREMENT_VERSION): 3}
+    assert f"6 with configuration {config_id_of(SIXTY)}" in several
+    assert f"3 with configuration {config_id_of(SEVENTY)} (measure.cap_latitude_deg 70.0)" in several
+    assert "6 with measure.cap_latitude_deg 60.0 (records) vs 70.0 (in force)" in against_70
+    assert "holds 6 records measured under other settings" in against_70
+
+
+def test_records_of_another_measurement_version_are_refused(tmp_path):
+    old = MEASUREMENT_VERSION - 1
+    path = record_store(tmp_path / "s", SIXTY, n=4, measure_version=old)
+    with open_store(path) as st:
+        for measure in (None, SIXTY):
+            with pytest.raises(StoreSettingsError) as exc:
+                check_measure_settings(st, measure)
+            assert f"4 with measurement code version {old} (records) vs {MEASUREMENT_VERSION} (in force)" \
+                in _one_line(exc)
+        assert list(st.iter_records(measure=SIXTY)) == []          # not this code's records
+        assert st.summary()["measurement_versions"] == {old: 4}
+        assert [r["measurement_version"] for r in st.rows()] == [old] * 4
+
+
+def test_settings_this_polecast_cannot_rebuild_are_refused(tmp_path):
+    path = record_store(tmp_path / "s", SIXTY, n=2)
+    con = sqlite3.connect(path)
+    stored = dict(json.loads(con.execute("SELECT settings FROM configs").fetchone()[0]))
+    cid = config_id_of(SIXTY)
+    con.execute("UPDATE configs SET settings = ? WHERE config_id = ?", (json.dumps(dict(stored, old_key=1)), cid))
+    con.commit()
+    with open_store(path) as st, pytest.raises(StoreSettingsError) as exc:
+        records_settings(st)
+    assert "settings this polecast cannot use" in _one_line(exc) and "old_key" in str(exc.value)
+    # records made before a key (here hdu) was added to MeasureSettings: filling its default would be a guess
+    del stored["hdu"]
+    old = config_id_of(stored)
+    con.execute("UPDATE configs SET settings = ?, config_id = ? WHERE config_id = ?", (json.dumps(stored), old, cid))
+    con.execute("UPDATE files SET config_id = ?", (old,))
+    con.commit()
+    con.close()
+    with open_store(path) as st, pytest.raises(StoreSettingsError) as exc:
+        records_settings(st)
+    assert "measure.hdu absent (records) vs None (in force)" in _one_line(exc)
+
+
+def _as_schema_1(path):
+    """Turn a store into the schema-1 layout (no measurement version), as stores written before it looked."""
+    con = sqlite3.connect(path)
+    con.execute("ALTER TABLE files DROP COLUMN measure_version")  # SQLite >= 3.35
+    con.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
+    con.commit()
+    con.close()
+
+
+def test_schema_1_store_read_with_unknown_version_and_upgraded_on_write(tmp_path):
+    path = record_store(tmp_path / "s", SIXTY, n=3)
+    _as_schema_1(path)
+    with open_store(path) as st:  # read-only: read as is, the version unknown
+        assert st.summary()["measurement_versions"] == {None: 3}
+        with pytest.raises(StoreSettingsError) as exc:
+            check_measure_settings(st, None)
+        assert "3 with measurement code version unknown (records) vs" in _one_line(exc)
+        assert [r.north_br_gauss is not None for r in st.iter_records()] == [True] * 3
+    with open_store(path, "a"):  # a writer upgrades the schema, keeping the records with NULL
+        pass
+    con = sqlite3.connect(path)
+    assert con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()[0] == str(SCHEMA_VERSION)
+    assert con.execute("SELECT COUNT(*), COUNT(measure_version) FROM files").fetchone() == (3, 0)
+    con.close()
+
+
+def test_error_records_are_not_stored(tmp_path):
+    """An error is not a result (issue 17): the store refuses to keep one, so the file is tried again."""
+    rec = {"file": "a.fits", "status": "error", "reason": "worker error: RuntimeError: boom"}
+    with open_store(tmp_path / "s", "a") as st, pytest.raises(ValueError, match="status 'error' is not stored"):
+        st.add([MeasuredFile("a.fits", 1, 1, "0" * 64, rec)], st.register_config(SIXTY))

@@ -46,7 +46,7 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def precursor_from_store(store_path, sunspots_path, settings, config=None) -> dict:
+def precursor_from_store(store_path, sunspots_path, settings, config=None, measure=None) -> dict:
     """The precursor of the coming cycle from a store of measured frames and a sunspot file.
 
     Reads the store and the monthly sunspot CSV, builds the polar series and
@@ -55,19 +55,25 @@ def precursor_from_store(store_path, sunspots_path, settings, config=None) -> di
     between the value at the last minimum and the value after the final
     reversal).
 
+    Only records measured under the measure settings in force are used:
+    ``measure`` (the ``[measure]`` section of a configuration given), or the
+    store's own when None (:func:`pipeline.store.check_measure_settings`).
+
     Raises
     ------
     ValueError
         When the store, the sunspot file or the coverage cannot give a precursor.
+    pipeline.store.StoreSettingsError
+        The store holds records measured under other settings (one line naming both).
     """
     from pipeline.aggregator import polar_series
     from pipeline.cycles import cycle_landmarks, read_monthly_csv
     from pipeline.precursor import precursor_for_forecast
-    from pipeline.store import open_store
+    from pipeline.store import check_measure_settings, open_store
 
     sections = getattr(config, "sections", {}) if config is not None else {}
     with open_store(store_path) as store:
-        records = list(store.iter_records())
+        records = list(store.iter_records(measure=check_measure_settings(store, measure)))
     if not records:
         raise ValueError(f"store {store_path}: no measured frame; ingest magnetograms first")
     series = polar_series(records, sections.get("series"))
@@ -115,7 +121,9 @@ def run(args) -> int:
                   file=sys.stderr)
             return EXIT_USAGE
         try:
-            item = precursor_from_store(args.store, args.sunspots, settings, config)
+            from pipeline.cli.series import given_measure
+
+            item = precursor_from_store(args.store, args.sunspots, settings, config, given_measure(args, config))
         except (ValueError, OSError, ImportError, RuntimeError) as exc:  # StoreError is a RuntimeError
             print(f"{prog}: cannot take the precursor from {args.store}: {exc}", file=sys.stderr)
             return EXIT_USAGE

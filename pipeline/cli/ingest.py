@@ -33,7 +33,8 @@ def add_parser(sub) -> None:
                    help="run on a dask.distributed cluster instead, e.g. tcp://HOST:8786 (started with "
                         "`dask scheduler` and `dask worker`); an unreachable scheduler is an error")
     p.add_argument("--remeasure", action="store_true",
-                   help="measure again files recorded with another measure configuration")
+                   help="measure again files recorded under other settings (another measure configuration "
+                        "or measurement-code version)")
     p.add_argument("--config", metavar="PATH", help="TOML configuration file ([measure] and [ingest])")
     p.set_defaults(func=run)
 
@@ -65,7 +66,7 @@ def run(args) -> int:
         print(f"polecast ingest: ... and {shown[0] - _MAX_SKIP_LINES} more skipped; "
               f"`polecast export {args.store} --skipped --out FILE` lists them all", file=sys.stderr)
     if summary.stale_config:
-        print(f"polecast ingest: {summary.stale_config} records of another configuration were not found under "
+        print(f"polecast ingest: {summary.stale_config} records of other settings were not found under "
               f"the given paths and were kept as they are", file=sys.stderr)
     print(summary.line())
     return summary.exit_code

@@ -10,7 +10,7 @@ import sys
 import numpy as np
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
-from pipeline.cli.series import add_series_options, load_records, series_overrides
+from pipeline.cli.series import add_series_options, given_measure, load_records, series_overrides
 from pipeline.config import load_config
 
 __all__ = ["add_parser", "run", "read_series_csv", "format_text", "SERIES_CSV_COLUMNS"]
@@ -25,8 +25,10 @@ def add_parser(sub) -> None:
         description="Every persistent sign change of the smoothed north, south and axial-dipole polar "
                     "fields, the final one, and a bootstrap interval for each; from a store (with "
                     "per-latitude-band epochs for cap boundaries 55..85 deg) or from a CSV table with "
-                    "columns time (ISO date or decimal year), north_br_gauss, south_br_gauss. Exit 0 ok, "
-                    "1 some rows were unreadable (each named on stderr), 2 usage error.")
+                    "columns time (ISO date or decimal year), north_br_gauss, south_br_gauss. A store's "
+                    "records must have been measured under the measure settings in force (those of --config, "
+                    "else the store's own). Exit 0 ok, 1 some rows were unreadable (each named on stderr), 2 "
+                    "usage error or settings mismatch.")
     p.add_argument("store", metavar="STORE", nargs="?", help="store file written by `polecast ingest`")
     p.add_argument("--series", metavar="CSV", help="read a series table instead of a store")
     p.add_argument("--format", choices=("json", "text"), default="json", help="output format (default json)")
@@ -138,7 +140,7 @@ def run(args) -> int:
     else:
         from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
 
-        records, err = load_records(args.store, "reversals")
+        records, err = load_records(args.store, given_measure(args, config))
         if records is None:
             print(f"{prog}: {err}", file=sys.stderr)
             return EXIT_USAGE

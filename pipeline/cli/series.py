@@ -13,7 +13,7 @@ from pipeline.config import load_config
 from pipeline.ncio import write_netcdf
 
 __all__ = ["add_parser", "run", "write_rotation_csv", "ROTATION_CSV_COLUMNS", "series_overrides",
-           "add_series_options", "load_records"]
+           "add_series_options", "load_records", "given_measure"]
 
 #: Columns of ``--format csv``: one row per Carrington rotation (``time`` = ISO date of its mid-time);
 #: the per-rotation means carry the plain names so the file feeds ``polecast reversals --series``.
@@ -38,7 +38,9 @@ def add_series_options(p) -> None:
     p.add_argument("--smoothing", choices=("gaussian", "running", "none"), help="smoother (default gaussian)")
     p.add_argument("--smoothing-width", type=float, metavar="N",
                    help="FWHM (gaussian) or window (running) in rotations (default 6)")
-    p.add_argument("--config", metavar="PATH", help="TOML configuration file")
+    p.add_argument("--config", metavar="PATH",
+                   help="TOML configuration file; its [measure] settings must be those the store's records were "
+                        "measured under (without it, the store's own are used)")
 
 
 def series_overrides(args) -> dict:
@@ -51,7 +53,9 @@ def add_parser(sub) -> None:
         description="Build the north, south and axial-dipole polar-field series of a store's measured "
                     "frames: per frame, per Carrington rotation (mean, error, coverage) and smoothed, with "
                     "the chosen B0 method. netCDF holds everything; CSV one row per rotation (readable "
-                    "by `polecast reversals --series`). Exit 0 ok, 1 no usable frames, 2 usage error.")
+                    "by `polecast reversals --series`). Only records measured under the measure settings in "
+                    "force are used (those of --config, else the store's own); a store holding others is "
+                    "refused. Exit 0 ok, 1 no usable frames, 2 usage error or settings mismatch.")
     p.add_argument("store", metavar="STORE", help="store file written by `polecast ingest`")
     p.add_argument("--out", metavar="FILE", required=True, help="output file ('-' for stdout, CSV only)")
     p.add_argument("--format", choices=("netcdf", "csv"), default="netcdf", help="output format (default netcdf)")
@@ -77,15 +81,37 @@ def write_rotation_csv(ds, stream) -> int:
     return int(ds.sizes["rotation"])
 
 
-def load_records(store_path, prog: str):
-    """All ``ok`` records of a store, or (None, message)."""
-    try:
-        from pipeline.store import StoreError, open_store
-    except ImportError as exc:  # the store module is optional at import time
-        return None, f"cannot read stores ({exc})"
+def given_measure(args, config):
+    """The ``[measure]`` settings in force: the configuration's when ``--config`` was given, else None.
+
+    None means "no configuration given": the store's own settings are in
+    force (:func:`pipeline.store.check_measure_settings`).
+    """
+    return config.measure if getattr(args, "config", None) is not None else None
+
+
+def load_records(store_path, measure=None):
+    """``(records, None)``: the ``ok`` records measured under the settings in force; or ``(None, message)``.
+
+    Parameters
+    ----------
+    store_path : str or path-like
+    measure : MeasureSettings, optional
+        The settings in force (:func:`given_measure`); None: the store's own.
+
+    Returns
+    -------
+    records : list of FrameRecord or None
+    message : str or None
+        One line: why the store cannot be read, or why its records are
+        refused (measured under other settings, naming both).
+    """
+    from pipeline.store import StoreError, check_measure_settings, open_store
+
     try:
         with open_store(store_path, "r") as store:
-            return list(store.iter_records()), None
+            in_force = check_measure_settings(store, measure)
+            return list(store.iter_records(measure=in_force)), None
     except (StoreError, OSError) as exc:
         return None, str(exc)
 
@@ -97,7 +123,7 @@ def run(args) -> int:
     if args.format == "netcdf" and args.out == "-":
         print("polecast series: netCDF needs --out FILE; use --format csv for stdout", file=sys.stderr)
         return EXIT_USAGE
-    records, err = load_records(args.store, "series")
+    records, err = load_records(args.store, given_measure(args, config))
     if records is None:
         print(f"polecast series: {err}", file=sys.stderr)
         return EXIT_USAGE
