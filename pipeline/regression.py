@@ -40,6 +40,7 @@ from pipeline.config import check_choice, check_number
 __all__ = [
     "ForecastSettings",
     "CalibrationTable",
+    "FitError",
     "LineFit",
     "Forecast",
     "METHODS",
@@ -105,6 +106,10 @@ class ForecastSettings:
         check_number("forecast.window_years", self.window_years, lo=0.0, hi=5.0, lo_open=True)
         if self.lag_years is not None:
             check_number("forecast.lag_years", self.lag_years, lo=0.0, hi=15.0)
+
+
+class FitError(ValueError):
+    """A calibration fit that cannot be trusted (e.g. ODRPACK did not converge); one-line reason."""
 
 
 @dataclass(frozen=True)
@@ -263,7 +268,8 @@ def _check_errors(name: str, err, n: int) -> np.ndarray:
     return e
 
 
-def fit_odr(precursor, amplitude, precursor_error=None, amplitude_error=None) -> LineFit:
+def fit_odr(precursor, amplitude, precursor_error=None, amplitude_error=None, *,
+            max_iterations: int = 1000) -> LineFit:
     """Orthogonal distance regression of amplitude on precursor (errors in both).
 
     Parameters
@@ -272,6 +278,17 @@ def fit_odr(precursor, amplitude, precursor_error=None, amplitude_error=None) ->
         As :func:`fit_ols`.
     precursor_error, amplitude_error : array_like
         One-sigma errors (gauss; sunspot number); required.
+    max_iterations : int
+        ODRPACK's iteration limit (``maxit``).
+
+    Raises
+    ------
+    FitError
+        When ODRPACK reports anything but convergence (``info`` 1, 2 or 3:
+        sum-of-squares and/or parameter convergence): the iteration limit
+        (``info`` 4), questionable results such as a problem that is not of
+        full rank at the solution, or a fatal error (``info`` >= 5).  The
+        message gives ODRPACK's stop reasons.
 
     Notes
     -----
@@ -303,19 +320,39 @@ def fit_odr(precursor, amplitude, precursor_error=None, amplitude_error=None) ->
     start = np.polyfit(x, y, 1)  # the OLS line [slope, intercept] as the starting point
     # Boggs & Rogers (1990): ODRPACK weighted orthogonal distance regression; scipy's unilinear
     # model (beta = [slope, intercept], analytic derivatives), started from the OLS line
+    check_number("max_iterations", max_iterations, lo=1, integer=True)
     job = odr.ODR(odr.RealData(x, y, sx=sx, sy=sy), odr.unilinear, beta0=start,
-                  sstol=1e-15, partol=1e-15, maxit=1000)
+                  sstol=1e-15, partol=1e-15, maxit=int(max_iterations))
     out = job.run()
+    _check_odr_converged(out, x.size)
     slope, intercept = (float(v) for v in out.beta)
     res_var = float(out.res_var)
     # reorder to (intercept, slope); scipy's cov_beta is unscaled: sd_beta^2 = diag(cov_beta) res_var
     cov = res_var * np.asarray(out.cov_beta, dtype=np.float64)[::-1, ::-1]
     # Orear (1982): effective variance sigma_y^2 + b^2 sigma_x^2 of a point about the line
     mean_sy2, mean_sx2 = float(np.mean(sy ** 2)), float(np.mean(sx ** 2))
-    # Orear (1982): effective variance sigma_y^2 + b^2 sigma_x^2 of a point about the line
     new_var = res_var * float(np.mean(sy ** 2 + slope ** 2 * sx ** 2))
     return LineFit("odr", intercept, slope, cov, new_var, x.size - 2,
                    odr_terms={"res_var": res_var, "mean_sy2": mean_sy2, "mean_sx2": mean_sx2})
+
+
+#: ODRPACK's INFO codes that mean convergence: 1 sum of squares, 2 parameters, 3 both; 4 is the
+#: iteration limit, >= 5 questionable results or a fatal error (scipy.odr.Output.info and its
+#: stopreason; Boggs, Byrd, Rogers & Schnabel 1992, ODRPACK 2.01 User's Reference Guide, NISTIR 4834,
+#: from memory)
+_ODR_CONVERGED = (1, 2, 3)
+
+
+def _check_odr_converged(out, n: int) -> None:
+    """Refuse an ODRPACK result that did not converge, with its stop reasons in one line."""
+    info = int(out.info)
+    if info in _ODR_CONVERGED:
+        return
+    reasons = "; ".join(str(r) for r in out.stopreason) or "no reason given"
+    raise FitError(f"method 'odr': ODRPACK returned no converged fit for the {n}-cycle table "
+                   f"(info {info}: {reasons}); "
+                   f"check the table for near-equal precursors or errors of very different sizes, "
+                   f"or use method 'ols'")
 
 
 def fit_loglinear(precursor, amplitude, precursor_error=None, amplitude_error=None) -> LineFit:
@@ -368,7 +405,8 @@ def predict(fit: LineFit, precursor: float, level: float = LEVEL_95, precursor_e
         Central probability of the interval (0 < level < 1).
     precursor_error : float, optional
         One-sigma error of ``precursor`` (gauss), propagated as
-        :math:`b^2\\sigma_{x0}^2` (first order).
+        :math:`b^2\\sigma_{x0}^2` (first order; for ``loglinear`` the relative
+        error :math:`\\sigma_{x0}/x_0` on the log scale).
 
     Returns
     -------
@@ -377,9 +415,33 @@ def predict(fit: LineFit, precursor: float, level: float = LEVEL_95, precursor_e
 
     Notes
     -----
-    :math:`\\hat y_0 \\pm t_{n-2,(1+\\mathrm{level})/2}\\sqrt{\\sigma^2_{new} + [1, x_0]\\,C\\,[1, x_0]^T}`;
+    :math:`\\hat y_0 \\pm t_{\\nu,(1+\\mathrm{level})/2}\\sqrt{V}`,
+    :math:`V = \\sigma^2_{new} + [1, x_0]\\,C\\,[1, x_0]^T + V_{x0}`.
+
+    Without a precursor error, :math:`V_{x0} = 0` and :math:`\\nu = n - 2`;
     for OLS this is :math:`s\\sqrt{1 + 1/n + (x_0-\\bar x)^2/S_{xx}}`, the
     prediction interval for a new observation (Draper & Smith 1998, sec. 1.4).
+
+    ``ols``/``loglinear`` with a precursor error: the stated error is taken
+    as known, :math:`V_{x0} = b^2\\sigma_{x0}^2`, added to the estimated
+    variance :math:`V_e` (the first two terms, n - 2 degrees of freedom), and
+    the quantile uses the Welch-Satterthwaite effective degrees of freedom
+    :math:`\\nu = (V_e + V_{x0})^2 / (V_e^2/(n-2))` (Satterthwaite 1946;
+    Welch 1947): a Student-t quantile on the whole variance would over-cover
+    (seeded Monte Carlo in tests/test_regression.py).
+
+    ``odr``: every stated error is known up to the common scale ``res_var``
+    that the fit estimates, so the new precursor's error replaces the
+    calibration's mean precursor error inside the scaled term,
+    :math:`\\sigma^2_{new} = \\mathrm{res\\_var}\\,(\\overline{\\sigma_y^2} + b^2\\sigma_{x0}^2)`,
+    and :math:`\\nu = n - 2`.  Without a precursor error, the new precursor
+    is taken to have the calibration's typical error (see :func:`fit_odr`).
+
+    References
+    ----------
+    Draper, N. R. & Smith, H. 1998, *Applied Regression Analysis*, 3rd ed., Wiley.
+    Satterthwaite, F. E. 1946, Biometrics Bulletin 2, 110.
+    Welch, B. L. 1947, Biometrika 34, 28.
     """
     check_number("level", level, lo=0.0, hi=1.0, lo_open=True)
     if not level < 1.0:
@@ -398,16 +460,22 @@ def predict(fit: LineFit, precursor: float, level: float = LEVEL_95, precursor_e
         x0 = math.log(x0)
     g = np.array([1.0, x0])
     new_var = fit.new_point_variance
+    known_var = 0.0
     odr_terms = fit.odr_terms
     if odr_terms is not None and sx0 is not None:
         # the new precursor's own error replaces the calibration's mean precursor error
         new_var = odr_terms["res_var"] * (odr_terms["mean_sy2"] + fit.slope ** 2 * sx0 ** 2)
     elif sx0 is not None:
-        new_var = new_var + fit.slope ** 2 * sx0 ** 2
-    # Draper & Smith (1998) sec. 1.4: new-observation variance plus parameter variance
-    sd = math.sqrt(new_var + float(g @ fit.cov @ g))
+        known_var = fit.slope ** 2 * sx0 ** 2  # first-order propagation of a stated (known) error
+    # Draper & Smith (1998) sec. 1.4: new-observation variance plus parameter variance (n - 2 dof)
+    estimated_var = new_var + float(g @ fit.cov @ g)
+    dof = float(fit.dof)
+    if known_var > 0:
+        # Satterthwaite (1946), Welch (1947): effective dof of an estimated plus a known variance
+        dof = (estimated_var + known_var) ** 2 / (estimated_var ** 2 / fit.dof)
+    sd = math.sqrt(estimated_var + known_var)
     yhat = fit.intercept + fit.slope * x0
-    half = float(stats.t.ppf(0.5 + level / 2.0, fit.dof)) * sd
+    half = float(stats.t.ppf(0.5 + level / 2.0, dof)) * sd
     lo, hi = yhat - half, yhat + half
     if fit.y_transform == "log":
         return math.exp(yhat), math.exp(lo), math.exp(hi)

