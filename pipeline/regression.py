@@ -568,54 +568,102 @@ def forecast_amplitude(table: CalibrationTable, precursor: float, settings: Fore
                     intercept=fit.intercept, slope=fit.slope, calibrated_range=(lo_x, hi_x), warnings=found)
 
 
+#: the calibration CSV's column names (a header is recognised by these names only; case and
+#: surrounding spaces are ignored): required, then the optional pair of one-sigma errors
 _COLUMNS = ("cycle", "precursor", "amplitude")
 _ERROR_COLUMNS = ("precursor_error", "amplitude_error")
+_ACCEPTED = _COLUMNS + _ERROR_COLUMNS
+
+
+def _calibration_header(path: Path, lineno: int, cells: list) -> list:
+    """The header's column names, or ValueError naming the line, what is wrong and what is accepted."""
+    names = [c.strip().lower() for c in cells]
+    accepted = ",".join(_COLUMNS) + " (optionally " + ",".join(_ERROR_COLUMNS) + ")"
+    unknown = [n for n in names if n not in _ACCEPTED]
+    if unknown:
+        shown = ",".join(c.strip() for c in cells)
+        raise ValueError(f"calibration file {path}: line {lineno} {shown!r} is not a header (unknown column "
+                         f"name(s) {', '.join(repr(u) for u in unknown)}); the first line must name the columns "
+                         f"{accepted}")
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise ValueError(f"calibration file {path}: line {lineno}: column(s) {', '.join(dup)} named twice; "
+                         f"name each column once")
+    missing = [c for c in _COLUMNS if c not in names]
+    if missing:
+        raise ValueError(f"calibration file {path}: missing column(s) {', '.join(missing)}; the header must "
+                         f"name {accepted}")
+    given = [c for c in _ERROR_COLUMNS if c in names]
+    if len(given) == 1:
+        other = [c for c in _ERROR_COLUMNS if c not in names][0]
+        raise ValueError(f"calibration file {path}: column {given[0]} given without {other}; give both error "
+                         f"columns (method 'odr' uses them) or neither")
+    return names
 
 
 def read_calibration_csv(path: str | Path) -> CalibrationTable:
-    """Read a calibration CSV with a header ``cycle,precursor,amplitude``.
+    """Read a calibration CSV: a header line naming the columns, then one row per past cycle.
 
-    Optional columns ``precursor_error`` and ``amplitude_error`` (both or
-    neither are used).  Rows with a missing or non-numeric value are left out
-    with a one-line reason in ``problems``.
+    The header is the first line that is neither blank nor a ``#`` comment,
+    and it is recognised by its column names only (case and surrounding
+    spaces ignored): ``cycle``, ``precursor`` (gauss), ``amplitude``
+    (sunspot number), and optionally both ``precursor_error`` and
+    ``amplitude_error`` (one-sigma, same units), in any order.  A data row
+    that cannot be used (wrong number of cells, a missing or non-finite
+    number, an error that is not positive, a cycle given twice) is left out
+    with a one-line reason, naming its line in the file, in ``problems``.
 
     Raises
     ------
     ValueError
-        When the file cannot be read or lacks a required column.
+        When the file cannot be read, has no header line, its first line is
+        not a header (for instance a data row: the columns would be
+        guessed), a column name is unknown, repeated or missing, or only one
+        of the two error columns is given.
     """
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise ValueError(f"calibration file {path}: cannot read ({exc})") from None
-    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    reader = csv.DictReader(lines)
-    header = [h.strip().lower() for h in (reader.fieldnames or [])]
-    missing = [c for c in _COLUMNS if c not in header]
-    if missing:
-        raise ValueError(f"calibration file {path}: missing column(s) {', '.join(missing)}; the header must "
-                         f"name cycle,precursor,amplitude (optionally precursor_error,amplitude_error)")
-    reader.fieldnames = header
+    lines = [(k, ln) for k, ln in enumerate(text.splitlines(), start=1)
+             if ln.strip() and not ln.lstrip().startswith("#")]
+    if not lines:
+        raise ValueError(f"calibration file {path}: no header line; the first line must name the columns "
+                         f"{','.join(_COLUMNS)}")
+    rows = [next(csv.reader([ln])) for _, ln in lines]  # one row per line, so reasons name true lines
+    header = _calibration_header(path, lines[0][0], rows[0])
     use_errors = all(c in header for c in _ERROR_COLUMNS)
     wanted = ("precursor", "amplitude") + (_ERROR_COLUMNS if use_errors else ())
     cycles, cols, problems = [], {c: [] for c in wanted}, []
-    for lineno, row in enumerate(reader, start=2):
+    first_line_of = {}
+    for (lineno, _), cells in zip(lines[1:], rows[1:]):
+        if len(cells) != len(header):
+            problems.append(f"line {lineno}: {len(cells)} cells, the header names {len(header)} columns; "
+                            f"row left out")
+            continue
+        row = {name: cell.strip() for name, cell in zip(header, cells)}
         values = {}
         for c in wanted:
-            raw = (row.get(c) or "").strip()
+            raw = row[c]
             try:
                 values[c] = float(raw)
             except ValueError:
                 values[c] = math.nan
             if not math.isfinite(values[c]):
-                problems.append(f"row {lineno}: {c} {raw!r} is not a finite number; row left out")
+                problems.append(f"line {lineno}: {c} {raw!r} is not a finite number; row left out")
                 break
             if c in _ERROR_COLUMNS and values[c] <= 0:
-                problems.append(f"row {lineno}: {c} {raw!r} must be positive; row left out")
+                problems.append(f"line {lineno}: {c} {raw!r} must be positive; row left out")
                 break
         else:
-            cycles.append((row.get("cycle") or "").strip())
+            label = row["cycle"]
+            if label in first_line_of:
+                problems.append(f"line {lineno}: cycle {label!r} already given on line {first_line_of[label]}; "
+                                f"row left out")
+                continue
+            first_line_of[label] = lineno
+            cycles.append(label)
             for c in wanted:
                 cols[c].append(values[c])
     return CalibrationTable(

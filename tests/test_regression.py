@@ -280,14 +280,23 @@ def test_forecast_outputs_and_warnings(cars):
     x, y = cars
     f = forecast_amplitude(_table(x, y), 15.0)
     d = f.to_dict()
-    for key in ("amplitude", "interval_68", "interval_95", "method", "n_cycles", "r", "loo_rmse", "precursor",
-                "cautions", "warnings"):
-        assert key in d
+    assert set(d) == {"amplitude", "interval_68", "interval_95", "method", "n_cycles", "r", "loo_rmse", "precursor",
+                      "precursor_error", "intercept", "slope", "calibrated_range", "warnings", "cautions"}
     assert d["method"] == "ols" and d["n_cycles"] == x.size and d["warnings"] == []
+    assert d["precursor"] == 15.0 and d["precursor_error"] is None
+    assert d["calibrated_range"] == [4.0, 25.0]  # R's cars: speeds 4..25 mph
     assert d["r"] == pytest.approx(stats.pearsonr(x, y)[0], rel=1e-12)  # scipy reference
-    lo68, hi68 = d["interval_68"]
-    lo95, hi95 = d["interval_95"]
-    assert lo95 < lo68 < d["amplitude"] < hi68 < hi95
+    # reference library: statsmodels OLS, its prediction (mean, new-observation interval) at 15
+    res = sm.OLS(y, sm.add_constant(x)).fit()
+    assert [d["intercept"], d["slope"]] == pytest.approx(list(res.params), rel=1e-10)
+    for key, level in (("interval_68", LEVEL_68), ("interval_95", 0.95)):
+        frame = res.get_prediction(np.array([[1.0, 15.0]])).summary_frame(alpha=1 - level)
+        assert d["amplitude"] == pytest.approx(frame["mean"][0], rel=1e-10)
+        assert d[key] == pytest.approx([frame["obs_ci_lower"][0], frame["obs_ci_upper"][0]], rel=1e-10)
+    # leave-one-out residuals of OLS are e_i / (1 - h_ii) (the PRESS identity, Allen 1974,
+    # Technometrics 16, 125), with statsmodels' hat-matrix diagonal
+    h = res.get_influence().hat_matrix_diag
+    assert d["loo_rmse"] == pytest.approx(np.sqrt(np.mean((res.resid / (1 - h)) ** 2)), rel=1e-10)
     assert "few solar cycles" in d["cautions"] and "Official space-weather forecasts" in CAUTIONS
     out = forecast_amplitude(_table(x, y), 40.0)
     assert out.warnings and "outside the calibrated range [4, 25]" in out.warnings[0]
@@ -331,17 +340,55 @@ def test_read_calibration_csv(tmp_path):
                  "21,1.2,160,0.1,8\n22,1.1,150,0.1,8\n23,,120,0.1,8\n24,0.6,80,0,8\n25,0.7,95,0.1,6\n")
     t = read_calibration_csv(p)
     assert t.cycle == ("21", "22", "25") and t.n_cycles == 3
+    np.testing.assert_array_equal(t.precursor, [1.2, 1.1, 0.7])
+    np.testing.assert_array_equal(t.amplitude, [160.0, 150.0, 95.0])
     np.testing.assert_array_equal(t.precursor_error, [0.1, 0.1, 0.1])
-    assert len(t.problems) == 2 and "row 4: precursor ''" in t.problems[0] and "must be positive" in t.problems[1]
-    q = tmp_path / "bad.csv"
-    q.write_text("cycle,amp\n1,2\n")
-    with pytest.raises(ValueError, match="missing column\\(s\\) precursor, amplitude"):
-        read_calibration_csv(q)
+    np.testing.assert_array_equal(t.amplitude_error, [8.0, 8.0, 6.0])
+    assert t.problems == ["line 4: precursor '' is not a finite number; row left out",
+                          "line 5: precursor_error '0' must be positive; row left out"]
     with pytest.raises(ValueError, match="cannot read"):
         read_calibration_csv(tmp_path / "nope.csv")
+    # comments and blank lines before the header: the reasons still name the file's own lines
     r = tmp_path / "plain.csv"
-    r.write_text("# Tessaly calibration (demo)\ncycle,precursor,amplitude\n1,1,2\n2,2,3\n")
-    assert read_calibration_csv(r).precursor_error is None
+    r.write_text("# Tessaly calibration (demo)\n\n Cycle , PRECURSOR,amplitude\n1,1,2\n2,x,3\n3,3,4\n")
+    plain = read_calibration_csv(r)
+    assert plain.precursor_error is None and plain.amplitude_error is None
+    assert plain.cycle == ("1", "3") and plain.problems == ["line 5: precursor 'x' is not a finite number; "
+                                                            "row left out"]
+    # columns in any order, named by the header
+    o = tmp_path / "order.csv"
+    o.write_text("amplitude,cycle,precursor\n100,a,1.5\n")
+    ordered = read_calibration_csv(o)
+    assert (ordered.cycle, ordered.precursor.tolist(), ordered.amplitude.tolist()) == (("a",), [1.5], [100.0])
+
+
+@pytest.mark.parametrize("text,reason", [
+    # a first line that is a data row is not taken for a header (the columns would be guessed)
+    ("21,1.2,160\n22,1.1,150\n", r"line 1 '21,1.2,160' is not a header \(unknown column name\(s\) '21', '1.2', "
+                                   r"'160'\); the first line must name the columns cycle,precursor,amplitude"),
+    ("# comment\ncycle,precursor,amplitdue\n1,2,3\n", r"line 2 'cycle,precursor,amplitdue' is not a header "
+                                                      r"\(unknown column name\(s\) 'amplitdue'\)"),
+    ("cycle,precursor\n1,2\n", r"missing column\(s\) amplitude"),
+    ("cycle,precursor,amplitude,precursor\n1,2,3,4\n", r"line 1: column\(s\) precursor named twice"),
+    ("cycle,precursor,amplitude,precursor_error\n1,2,3,0.1\n",
+     r"column precursor_error given without amplitude_error; give both error columns"),
+    ("# only a comment\n\n", r"no header line"),
+])
+def test_calibration_header_is_recognised_by_its_names_only(tmp_path, text, reason):
+    p = tmp_path / "cal.csv"
+    p.write_text(text)
+    with pytest.raises(ValueError, match=reason):
+        read_calibration_csv(p)
+
+
+def test_calibration_rows_with_the_wrong_shape_or_a_repeated_cycle_are_reported(tmp_path):
+    p = tmp_path / "cal.csv"
+    p.write_text("cycle,precursor,amplitude\n1,1.0,80\n2,1.5\n3,2.0,120,7\n1,1.1,85\n4,1.8,110\n")
+    t = read_calibration_csv(p)
+    assert t.cycle == ("1", "4") and t.precursor.tolist() == [1.0, 1.8]
+    assert t.problems == ["line 3: 2 cells, the header names 3 columns; row left out",
+                          "line 4: 4 cells, the header names 3 columns; row left out",
+                          "line 5: cycle '1' already given on line 2; row left out"]
 
 
 def test_config_section(tmp_path):
