@@ -34,6 +34,8 @@ __all__ = [
     "cycle_landmarks",
     "read_monthly_csv",
     "parse_time_decimal_year",
+    "HEADER_DATE_NAMES",
+    "HEADER_VALUE_NAMES",
 ]
 
 #: weights of the 13-month running mean (half weights on the two end months)
@@ -374,6 +376,21 @@ _ISO_MONTH = re.compile(r"^(\d{4})-(\d{2})$")
 _ISO_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}([T ].*)?$")
 _MISSING = {"", "nan", "na", "n/a", "null", "none", "-"}
 
+#: column names a monthly CSV's header may use (case ignored; spaces and hyphens count as "_"):
+#: the date column, then the value column
+HEADER_DATE_NAMES = ("date", "time", "month", "year", "decimal_year")
+HEADER_VALUE_NAMES = ("value", "sunspot_number", "sunspots", "ssn")
+
+
+def _header_name(cell: str) -> str:
+    return re.sub(r"[\s\-]+", "_", cell.strip().lower())
+
+
+def _is_header(cells: list) -> bool:
+    """True when the first two cells are accepted column names (see ``HEADER_*_NAMES``)."""
+    return (len(cells) >= 2 and _header_name(cells[0]) in HEADER_DATE_NAMES
+            and _header_name(cells[1]) in HEADER_VALUE_NAMES)
+
 
 def parse_time_decimal_year(text: str) -> float:
     """A date cell -> decimal year.
@@ -416,10 +433,19 @@ def _month_index(time_decimal_year: float) -> int:
 def read_monthly_csv(path: str | Path) -> MonthlySeries:
     """Read a two-column monthly CSV (date, value) onto a gap-free monthly grid.
 
-    A header line is optional; blank or missing values (``NaN``, ``NA``,
-    empty) become NaN; months absent from the file are NaN.  Rows that cannot
-    be read (bad date, bad or negative number, duplicate month) are left out
-    with a one-line reason in ``problems``.
+    A header line is optional.  It is recognised by its column names only:
+    the first line that is neither blank nor a ``#`` comment is a header when
+    its first cell is one of :data:`HEADER_DATE_NAMES` (``date``, ``time``,
+    ``month``, ``year``, ``decimal_year``) and its second one of
+    :data:`HEADER_VALUE_NAMES` (``value``, ``sunspot_number``, ``sunspots``,
+    ``ssn``), case ignored and spaces or hyphens read as ``_``.  Any other
+    line is a data row: a first line that is neither a header nor a usable
+    row is a problem row like any other, never silently skipped.
+
+    Blank or missing values (``NaN``, ``NA``, empty) become NaN; months absent
+    from the file are NaN.  Rows that cannot be read (bad date, bad or
+    negative number, duplicate month) are left out with a one-line reason in
+    ``problems``; cells after the second are not read.
 
     Raises
     ------
@@ -435,18 +461,25 @@ def read_monthly_csv(path: str | Path) -> MonthlySeries:
     delimiter = ";" if sample.count(";") > sample.count(",") else ","
     problems: list[str] = []
     rows: dict[int, tuple[float, float]] = {}
+    first = True
     for lineno, row in enumerate(csv.reader(text.splitlines(), delimiter=delimiter), start=1):
         cells = [c.strip() for c in row]
         if not cells or all(c == "" for c in cells) or cells[0].startswith("#"):
+            continue
+        is_first, first = first, False
+        if is_first and _is_header(cells):
             continue
         if len(cells) < 2:
             cells.append("")
         try:
             t = parse_time_decimal_year(cells[0])
         except ValueError as exc:
-            if lineno == 1 and not rows:
-                continue  # a header line
-            problems.append(f"line {lineno}: {exc}")
+            if is_first:
+                problems.append(f"line {lineno}: neither a header (first column named "
+                                f"{'/'.join(HEADER_DATE_NAMES)}, second {'/'.join(HEADER_VALUE_NAMES)}) "
+                                f"nor a data row ({exc})")
+            else:
+                problems.append(f"line {lineno}: {exc}")
             continue
         raw = cells[1]
         if raw.lower() in _MISSING:

