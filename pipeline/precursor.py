@@ -108,11 +108,17 @@ def _window_mean(time, value, error, center: float, window_years: float) -> dict
     # standard error of the mean from the scatter of the rotations (needs two or more)
     scatter = float(v.std(ddof=1) / math.sqrt(n)) if n >= 2 else math.nan
     measurement = math.nan
+    without_error = n
     if error is not None:
         e = error[sel]
-        if np.all(np.isfinite(e)):
-            # independent per-rotation errors: sqrt(sum sigma_i^2) / n
-            measurement = float(math.sqrt(np.sum(e ** 2)) / n)
+        known = np.isfinite(e)
+        without_error = int(n - known.sum())
+        if known.any():
+            # independent per-rotation errors, propagated from the m rotations that have one:
+            # sqrt(sum sigma_i^2) / m, the error of their mean (as pipeline.aggregator does for the
+            # frames of a rotation); for m < n it exceeds the all-rotation value sqrt(sum)/sqrt(n m)
+            # that typical errors for the others would give, so a missing error never shrinks the term
+            measurement = float(math.sqrt(np.sum(e[known] ** 2)) / known.sum())
     candidates = [x for x in (scatter, measurement) if math.isfinite(x)]
     return {
         "time": float(center),
@@ -121,6 +127,7 @@ def _window_mean(time, value, error, center: float, window_years: float) -> dict
         "scatter_error_gauss": scatter if math.isfinite(scatter) else None,
         "measurement_error_gauss": measurement if math.isfinite(measurement) else None,
         "n_rotations": n,
+        "n_rotations_without_error": without_error,
         "window_years": float(window_years),
     }
 
@@ -153,13 +160,20 @@ def precursor_at(series, center_time_decimal_year: float, *, kind: str = "dipole
         ``time``, ``precursor_gauss`` (mean magnitude, G),
         ``precursor_error_gauss`` (the larger of the two standard errors, G),
         ``scatter_error_gauss`` (s / sqrt(n)), ``measurement_error_gauss``
-        (sqrt(sum sigma_i^2) / n), ``n_rotations``, ``window_years``.
+        (sqrt(sum sigma_i^2) / m over the m rotations that have an error; None
+        when none has), ``n_rotations``, ``n_rotations_without_error`` (n - m;
+        n when the series has no error variables), ``window_years``.
 
     Notes
     -----
     :math:`P = \\frac1n\\sum_{|t_i - t_0| \\le w} |B_i|`; standard error
-    :math:`\\max(s/\\sqrt n, \\sqrt{\\sum\\sigma_i^2}/n)`, conservative because
+    :math:`\\max(s/\\sqrt n, \\sqrt{\\sum\\sigma_i^2}/m)`, conservative because
     successive rotations are not independent (common practice, no source).
+    A rotation with a value but no error (NaN) counts in the mean and the
+    scatter; the propagated term comes from the m rotations that have one,
+    as the error of their mean, which is never smaller than the value the
+    others would give with errors like theirs (m = n: the usual
+    :math:`\\sqrt{\\sum\\sigma_i^2}/n`).
 
     Raises
     ------
@@ -192,7 +206,7 @@ def precursor_at_minima(series, minima_time_decimal_year, *, kind: str = "dipole
         except ValueError as exc:
             item = {"time": float(t0), "precursor_gauss": None, "precursor_error_gauss": None,
                     "scatter_error_gauss": None, "measurement_error_gauss": None, "n_rotations": 0,
-                    "window_years": w, "reason": str(exc)}
+                    "n_rotations_without_error": 0, "window_years": w, "reason": str(exc)}
         item["minimum_time"] = float(t0)
         out.append(item)
     return out

@@ -5,8 +5,8 @@ import pytest
 import xarray as xr
 from scipy import stats
 
-from pipeline.precursor import (MIN_LAG_AFTER_REVERSAL_YEARS, latest_precursor, precursor_after_reversal,
-                                precursor_at, precursor_at_minima, rotation_magnitude)
+from pipeline.precursor import (latest_precursor, precursor_after_reversal, precursor_at, precursor_at_minima,
+                                rotation_magnitude)
 from pipeline.timeutil import decimal_year, from_decimal_year
 
 # Carrington synodic rotation period 27.2753 d (common practice, no source), in Julian years
@@ -48,6 +48,7 @@ def test_window_mean_and_standard_errors_by_direct_computation():
     # independent errors: sqrt(sum sigma^2)/n = sigma/sqrt(n) (handbook formula)
     assert item["measurement_error_gauss"] == pytest.approx(0.3 / np.sqrt(2) / np.sqrt(sel.sum()), rel=1e-12)
     assert item["precursor_error_gauss"] == max(item["scatter_error_gauss"], item["measurement_error_gauss"])
+    assert item["n_rotations_without_error"] == 0
 
 
 def test_known_answer_on_synthetic_series():
@@ -77,16 +78,21 @@ def test_minima_outside_the_series_get_a_reason():
 def test_after_reversal_and_latest_window():
     ds = _series(t0=2030.0, t1=2036.0)
     early = precursor_after_reversal(ds, 2033.0, 2.0)
-    # Kumar et al. (2021, arXiv:2101.05013): usable only from about 4 yr after the reversal
-    assert MIN_LAG_AFTER_REVERSAL_YEARS == 4.0
-    assert early["lag_years"] == 2.0 and "Kumar et al. 2021" in early["notes"][0]
-    assert early["time"] == pytest.approx(2035.0)
-    late = precursor_after_reversal(ds, 2031.0, 4.5)
-    assert late["notes"] == []
+    assert early["lag_years"] == 2.0 and early["time"] == pytest.approx(2035.0)
+    # Kumar et al. (2021, arXiv:2101.05013): usable only from about 4 yr after the reversal; a lag
+    # just short of it carries the caution, a lag of 4 yr or more none
+    for lag, cautioned in ((2.0, True), (3.9, True), (4.0, False), (4.5, False)):
+        notes = precursor_after_reversal(ds, 2031.0, lag)["notes"]
+        if cautioned:
+            assert len(notes) == 1 and f"taken {lag:.2f} yr after the final reversal" in notes[0]
+            assert "only from about 4 yr after it (Kumar et al. 2021)" in notes[0]
+        else:
+            assert notes == [], lag
     newest = latest_precursor(ds, 2033.0)
     t = decimal_year(ds["rotation_time"].values)
     assert newest["newest_time"] == pytest.approx(t.max())
     assert newest["lag_years"] == pytest.approx(t.max() - 0.5 - 2033.0)
+    assert len(newest["notes"]) == 1  # a lag of 2.4 yr: cautioned
     assert newest["precursor_gauss"] == pytest.approx(precursor_at(ds, t.max() - 0.5)["precursor_gauss"])
 
 
@@ -97,6 +103,33 @@ def test_missing_values_and_errors_are_optional():
     assert e is None and np.isnan(v[5:9]).all()
     item = precursor_at(ds, float(t[7]), window_years=0.2)
     assert item["measurement_error_gauss"] is None and item["precursor_error_gauss"] == item["scatter_error_gauss"]
+    assert item["n_rotations_without_error"] == item["n_rotations"] > 0
+
+
+def test_one_missing_error_keeps_the_measurement_term_of_the_window():
+    # one rotation of the window has a value but no error: the propagated term comes from the others,
+    # sqrt(sum sigma_i^2)/m over the m rotations with an error (error of a mean of independent values,
+    # handbook formula), and the result says how many rotations lacked one
+    ds = _series(noise_gauss=0.3, seed=2)
+    t = decimal_year(ds["rotation_time"].values)
+    err = ds["dipole_br_rotation_error_gauss"].values.copy()
+    err *= np.linspace(1.0, 3.0, err.size)  # unequal errors, so the formula is exercised
+    sel = np.flatnonzero(np.abs(t - 2038.0) <= 0.5)
+    err[sel[3]] = np.nan
+    ds["dipole_br_rotation_error_gauss"] = ("rotation", err)
+    item = precursor_at(ds, 2038.0)
+    known = np.delete(err[sel], 3)
+    assert item["n_rotations"] == sel.size and item["n_rotations_without_error"] == 1
+    assert item["measurement_error_gauss"] == pytest.approx(np.sqrt(np.sum(known ** 2)) / known.size, rel=1e-12)
+    # the rotation still counts in the mean and the scatter
+    v = np.abs(ds["dipole_br_rotation_gauss"].values[sel])
+    assert item["precursor_gauss"] == pytest.approx(v.mean(), rel=1e-12)
+    assert item["scatter_error_gauss"] == pytest.approx(stats.sem(v), rel=1e-12)  # scipy reference
+    # never smaller than the all-rotation value with a typical (RMS) error for the missing one
+    rms = np.sqrt(np.mean(known ** 2))
+    assert item["measurement_error_gauss"] >= np.sqrt(np.sum(known ** 2) + rms ** 2) / sel.size
+    # the minima route reports the same count
+    assert precursor_at_minima(ds, [2038.0])[0]["n_rotations_without_error"] == 1
 
 
 def test_error_paths():
