@@ -33,7 +33,8 @@ from pipeline.config import ConfigError, MeasureSettings, check_number
 from pipeline.measure import MEASUREMENT_VERSION
 from pipeline.store import MeasuredFile, Store, config_id_of, file_digest, reason_group, settings_mismatch_message
 
-__all__ = ["IngestSettings", "IngestError", "IngestSummary", "DEFAULT_PATTERNS", "scan_paths", "hash_files",
+__all__ = ["IngestSettings", "IngestError", "IngestSummary", "DEFAULT_PATTERNS", "CHANGED_WHILE_READ", "scan_paths",
+           "hash_files",
            "measure_files", "ingest"]
 
 #: File-name patterns taken from directories when none is given: FITS in its usual spellings,
@@ -121,13 +122,21 @@ class IngestSummary:
     hashed : int
         Files whose bytes were hashed (their stat was new or changed).
     unreadable : int
-        Files neither measured nor stored: unreadable, or their worker
-        failed (tried again next time).
+        Files not stored because they could not be read whole and
+        unchanged: an operating-system error, or the file changed while it
+        was read (tried again next run).
+    errors : int
+        Files not stored because measuring them failed for a reason outside
+        the file: an unexpected exception in the measurement code (a bug),
+        out of memory, or a worker process that died on it (tried again
+        next run; never a permanent skip).
     skip_reasons : Counter
         Grouped reasons (:func:`pipeline.store.reason_group`) of the new
-        skipped files.
+        skipped files (bad input: permanent, stored).
     unreadable_reasons : Counter
-        Grouped reasons of the files not stored.
+        Grouped reasons of the unreadable files.
+    error_reasons : Counter
+        Grouped reasons of the errors.
     stale_config : int
         Current records of other settings left as they were (not under the
         scanned paths).
@@ -141,8 +150,10 @@ class IngestSummary:
     known: int = 0
     hashed: int = 0
     unreadable: int = 0
+    errors: int = 0
     skip_reasons: Counter = field(default_factory=Counter)
     unreadable_reasons: Counter = field(default_factory=Counter)
+    error_reasons: Counter = field(default_factory=Counter)
     stale_config: int = 0
     elapsed_s: float = 0.0
 
@@ -152,20 +163,28 @@ class IngestSummary:
 
     @property
     def exit_code(self) -> int:
-        """0 when no new file was skipped, 1 otherwise."""
-        return 1 if (self.new_skipped or self.unreadable) else 0
+        """0 when every file was measured or already known; 1 when any was skipped, unreadable or an error."""
+        return 1 if (self.new_skipped or self.unreadable or self.errors) else 0
 
     def line(self) -> str:
-        """``ingest: 1200 new (1180 ok, 20 skipped: 12 truncated file, 8 ...), 3400 already known``."""
+        """``ingest: 1200 new (1180 ok, 20 skipped: 12 truncated file, 8 ...), 3400 already known[, ...]``.
+
+        Then, when there are any: ``N re-measured ...``, ``N not stored
+        (reasons; tried again next run)`` for unreadable files and ``N
+        errors (reasons; not stored, tried again next run)``.
+        """
         inner = f"{self.new_ok} ok, {self.new_skipped} skipped"
         if self.new_skipped:
             inner += ": " + ", ".join(f"{n} {r}" for r, n in self.skip_reasons.most_common())
         text = f"ingest: {self.new} new ({inner}), {self.known} already known"
         if self.remeasured:
-            text += f", {self.remeasured} re-measured with the current configuration"
+            text += f", {self.remeasured} re-measured under the settings in force"
         if self.unreadable:
             why = ", ".join(f"{n} {r}" for r, n in self.unreadable_reasons.most_common())
             text += f", {self.unreadable} not stored ({why}; tried again next run)"
+        if self.errors:
+            why = ", ".join(f"{n} {r}" for r, n in self.error_reasons.most_common())
+            text += f", {self.errors} error{'s' if self.errors != 1 else ''} ({why}; not stored, tried again next run)"
         if self.stale_config:
             text += f", {self.stale_config} records of other settings not found under the given paths"
         return text
@@ -229,6 +248,10 @@ def _scan(paths, patterns):
 
 
 # -- worker functions (module level so that they pickle) ------------------------------------------
+#: Reason of a file whose size or modification time changed while it was hashed or measured.
+CHANGED_WHILE_READ = "file changed while it was read"
+
+
 def hash_files(paths: list[str]) -> list[tuple]:
     """``(path, size, mtime_ns, digest or None, error or None)`` for each path (runs in a worker)."""
     out = []
@@ -238,7 +261,7 @@ def hash_files(paths: list[str]) -> list[tuple]:
             digest = file_digest(p)
             st2 = os.stat(p)
             if (st2.st_size, st2.st_mtime_ns) != (st.st_size, st.st_mtime_ns):
-                out.append((p, st2.st_size, st2.st_mtime_ns, None, "file changed while it was read"))
+                out.append((p, st2.st_size, st2.st_mtime_ns, None, CHANGED_WHILE_READ))
                 continue
             out.append((p, st.st_size, st.st_mtime_ns, digest, None))
         except OSError as exc:
@@ -246,28 +269,53 @@ def hash_files(paths: list[str]) -> list[tuple]:
     return out
 
 
+def _stat_key(path: str) -> tuple[int, int]:
+    st = os.stat(path)
+    return st.st_size, st.st_mtime_ns
+
+
+def _unreadable(path: str, reason: str) -> dict:
+    """A record of a file that could not be read whole and unchanged: never stored, tried again next run."""
+    return {"file": path, "status": "unreadable", "reason": reason}
+
+
 def measure_files(items: list[tuple], settings: MeasureSettings) -> list[MeasuredFile]:
     """Measure ``(path, size, mtime_ns, digest)`` items (runs in a worker).
 
-    A file whose size or mtime differ from the hashed ones is hashed again,
-    so the digest always names the bytes that were measured (up to a change
-    during the measurement itself).
+    Each result's ``record`` has status ``ok`` or ``skipped`` (a result,
+    stored), ``error`` (:func:`pipeline.measure.error_record`: the
+    measurement failed for a reason outside the file) or ``unreadable`` (an
+    operating-system error, or the file changed while it was read); the last
+    two are never stored, so the next run tries the file again.
+
+    Notes
+    -----
+    The file's ``(size, mtime_ns)`` is taken before and after measuring.
+    When they differ, the bytes measured are not one version of the file:
+    the reason is :data:`CHANGED_WHILE_READ`.  When they agree with each
+    other but not with the hashed ones (the file was replaced between
+    hashing and measuring), the file is hashed again, and checked again,
+    so the digest names the bytes that were measured.  A rewrite that keeps
+    the size and falls within the file system's mtime resolution cannot be
+    seen this way.
     """
-    from pipeline.measure import measure_file, skipped_record
+    from pipeline.measure import MEASUREMENT_VERSION, measure_file
 
     out = []
     for path, size, mtime_ns, digest in items:
         try:
-            rec = measure_file(path, settings)
-        except Exception as exc:  # measure_file never raises for bad input; be safe anyway
-            rec = skipped_record(path, f"unexpected error: {type(exc).__name__}: {exc}")
-        try:
-            st = os.stat(path)
-            if (st.st_size, st.st_mtime_ns) != (size, mtime_ns):
-                size, mtime_ns, digest = st.st_size, st.st_mtime_ns, file_digest(path)
-        except OSError:
-            pass
-        out.append(MeasuredFile(path, size, mtime_ns, digest, rec.to_dict()))
+            before = _stat_key(path)
+            rec = measure_file(path, settings).to_dict()
+            if _stat_key(path) != before:
+                rec = _unreadable(path, CHANGED_WHILE_READ)
+            elif before != (size, mtime_ns):  # replaced after hashing: name the bytes that were measured
+                digest = file_digest(path)
+                if _stat_key(path) != before:
+                    rec = _unreadable(path, CHANGED_WHILE_READ)
+                size, mtime_ns = before
+        except OSError as exc:
+            rec = _unreadable(path, f"cannot read file: {exc.strerror or exc}")
+        out.append(MeasuredFile(path, size, mtime_ns, digest, rec, MEASUREMENT_VERSION))
     return out
 
 
@@ -408,7 +456,8 @@ def _chunks(it: Iterator, size: int) -> Iterator[list]:
 def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSettings | None = None,
            settings: IngestSettings | None = None, *, scheduler: str | None = None, remeasure: bool = False,
            progress: bool = False, progress_stream=None,
-           on_skip: Callable[[str, str], None] | None = None) -> IngestSummary:
+           on_skip: Callable[[str, str], None] | None = None,
+           on_error: Callable[[str, str], None] | None = None) -> IngestSummary:
     """Measure every file under ``paths`` that the store does not hold yet, and record it.
 
     Parameters
@@ -431,8 +480,25 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     progress : bool
         Draw a progress bar on ``progress_stream`` (default stdout).
     on_skip : callable, optional
-        Called ``on_skip(path, reason)`` for each new skipped or unreadable
-        file.
+        Called ``on_skip(path, reason)`` for each new skipped file (bad
+        input, stored), and for each file not stored when ``on_error`` is
+        None.
+    on_error : callable, optional
+        Called ``on_error(path, reason)`` for each file not stored this run
+        (unreadable, or an error: see :class:`IngestSummary`); tried again
+        next run.
+
+    Notes
+    -----
+    Worker failures: a task that raises is split into one task per file,
+    and a file whose own task raises is an error.  When a local worker
+    process dies (the pool breaks), every task that was in flight is a
+    suspect: its files are run again one at a time, with nothing else in
+    flight, so a file whose worker dies while it runs alone is the culprit
+    (an error, not stored, tried again next run) and every other file is
+    measured and stored as usual.  More than five culprits in a row without
+    a file measured in between stop the ingest (:class:`IngestError`),
+    keeping everything committed.
 
     Returns
     -------
@@ -472,8 +538,9 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     remeasure_digests: set = set()  # digests measured again (their config differs)
     writes: list = []               # MeasuredFile results not yet committed
     links: list = []                # (path, size, mtime_ns, digest) not yet committed
-    attempts: Counter = Counter()   # path -> retries after a worker crash
-    crashes = 0                     # pool breakdowns since the last successful task
+    quarantine: deque = deque()     # (kind, [item]) suspects of a worker crash, run one at a time
+    alone: set = set()              # futures of suspects, each submitted with nothing else in flight
+    crashes = 0                     # culprits found since the last successful task
     last_commit = time.monotonic()
     done_paths = 0
 
@@ -500,17 +567,31 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     def classify_hashed(path, size, mtime_ns, digest, error):
         summary.hashed += 1
         if digest is None:
-            not_stored(path, error)
+            not_stored(path, error, "unreadable")
         else:
             route(path, size, mtime_ns, digest)
 
-    def not_stored(path, error):
+    def not_stored(path, reason, kind):
+        """A file neither measured nor stored this run (``kind`` "unreadable" or "error"); tried again next run."""
         nonlocal done_paths
-        summary.unreadable += 1
-        summary.unreadable_reasons[reason_group(error)] += 1
+        if kind == "error":
+            summary.errors += 1
+            summary.error_reasons[reason_group(reason)] += 1
+        else:
+            summary.unreadable += 1
+            summary.unreadable_reasons[reason_group(reason)] += 1
         done_paths += 1
-        if on_skip:
-            on_skip(path, error)
+        tell = on_error or on_skip
+        if tell:
+            tell(path, reason)
+
+    def drop_copies(digest, reason, kind):
+        """Paths waiting on a content that was not stored: not linked either, with the same outcome."""
+        nonlocal done_paths
+        for path, *_ in in_flight.pop(digest, None) or ():
+            summary.known -= 1  # counted as known when they joined
+            done_paths -= 1
+            not_stored(path, reason, kind)
 
     def route(path, size, mtime_ns, digest, link=True):
         nonlocal done_paths
@@ -534,24 +615,39 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
     def record(requested: list[tuple], results: list[MeasuredFile]):
         nonlocal done_paths
         for (_, _, _, asked), r in zip(requested, results):
+            status, reason = r.record["status"], r.record.get("reason")
+            if status in ("ok", "skipped") and r.measure_version != MEASUREMENT_VERSION:
+                status, reason = "error", (f"the worker runs measurement code version {r.measure_version}, this "
+                                           f"polecast {MEASUREMENT_VERSION}; install the same polecast on every "
+                                           f"worker")
+            if status not in ("ok", "skipped"):  # an error or unreadable: not a result
+                kind = "error" if status == "error" else "unreadable"
+                drop_copies(asked, reason, kind)
+                not_stored(r.path, reason, kind)
+                continue
             writes.append(r)
-            # same content seen at other paths while it was being measured
-            for path, size, mtime_ns, _ in in_flight.pop(asked, None) or ():
-                links.append((path, size, mtime_ns, r.digest))
-            if r.record["status"] == "ok":
+            copies = in_flight.pop(asked, None) or ()
+            if r.digest == asked:  # same content seen at other paths while it was being measured
+                links.extend((path, size, mtime_ns, asked) for path, size, mtime_ns, _ in copies)
+            else:  # the file was replaced after hashing: its copies still hold the hashed bytes
+                summary.known -= len(copies)
+                done_paths -= len(copies)
+                for item in copies:
+                    route(*item)
+            if status == "ok":
                 summary.new_ok += 1
             else:
                 summary.new_skipped += 1
-                summary.skip_reasons[reason_group(r.record.get("reason"))] += 1
+                summary.skip_reasons[reason_group(reason)] += 1
                 if on_skip:
-                    on_skip(r.path, r.record.get("reason"))
+                    on_skip(r.path, reason)
             if r.digest in remeasure_digests:
                 summary.remeasured += 1
                 remeasure_digests.discard(r.digest)
             done_paths += 1
 
     def submit_measure(items):
-        pending[backend.submit(measure_files, items, measure)] = ("measure", items)
+        resubmit("measure", items)
 
     def fill(scan_chunks):
         # measuring first keeps the window draining; hashing feeds it
@@ -567,7 +663,7 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
                 try:
                     st = os.stat(path)
                 except OSError as exc:
-                    not_stored(path, f"cannot read file: {exc.strerror or exc}")
+                    not_stored(path, f"cannot read file: {exc.strerror or exc}", "unreadable")
                     continue
                 digest = store.digest_for_stat(path, st.st_size, st.st_mtime_ns)
                 if digest is None:
@@ -583,56 +679,67 @@ def ingest(paths: Iterable[str | os.PathLike], store: Store, measure: MeasureSet
                 submit_measure([to_measure.popleft() for _ in range(n)])
         return True
 
-    def failed(kind, payload, exc):
-        """A task raised or its worker died: isolate the file, retry bystanders, never poison the store."""
+    def failed(kind, payload, exc, ran_alone):
+        """A task raised or its worker died: find the file, measure the bystanders, never poison the store."""
         nonlocal crashes
-        reason = f"worker failed: {type(exc).__name__}: {' '.join(str(exc).split())}"[:300]
-        broken = isinstance(exc, cf.process.BrokenProcessPool)
-        if broken:
+        detail = f"{type(exc).__name__}: {' '.join(str(exc).split())}"[:300]
+        if isinstance(exc, cf.process.BrokenProcessPool):
+            backend.restart()
+            if not ran_alone:  # any task in flight may have killed the worker: run each file alone
+                quarantine.extend((kind, [item]) for item in payload)
+                return
             crashes += 1
             if crashes > _MAX_CRASHES_WITHOUT_PROGRESS:
-                raise IngestError(f"worker processes keep failing ({reason}); nothing more was measured, "
-                                  f"everything committed so far is kept; run again once the cause is fixed")
-            backend.restart()
-        key = payload[0] if kind == "hash" else payload[0][0]
-        if len(payload) == 1 and broken and attempts[key] < 2:  # maybe a bystander of another file's crash
-            attempts[key] += 1
-            resubmit(kind, payload)
-            return
-        if len(payload) > 1:  # isolate the culprit: one file per task
+                raise IngestError(f"worker processes keep dying ({detail}); {crashes} files in a row killed "
+                                  f"their worker; everything committed so far is kept; run again once the cause "
+                                  f"is fixed")
+            give_up(kind, payload[0], f"worker process died while measuring it ({detail})")
+        elif len(payload) > 1:  # isolate the file: one per task
             for item in payload:
                 resubmit(kind, [item])
-            return
-        # a file that fails its worker is reported but not stored (as if unreadable): the cause may be
-        # the machine (memory, a lost worker), so the next run tries it again
+        else:
+            give_up(kind, payload[0], f"worker failed: {detail}")
+
+    def give_up(kind, item, reason):
+        """The worker failed on this file alone: an error, not stored; the next run tries it again."""
         if kind == "measure":
-            in_flight.pop(payload[0][3], None)
-        not_stored(key, reason)
+            drop_copies(item[3], reason, "error")
+            not_stored(item[0], reason, "error")
+        else:
+            not_stored(item, reason, "error")
 
     def resubmit(kind, payload):
         if kind == "hash":
-            pending[backend.submit(hash_files, payload)] = ("hash", payload)
-        else:
-            submit_measure(payload)
+            fut = backend.submit(hash_files, payload)
+            pending[fut] = ("hash", payload)
+            return fut
+        fut = backend.submit(measure_files, payload, measure)
+        pending[fut] = ("measure", payload)
+        return fut
 
     scan_chunks = _chunks(scan_paths(paths, settings.patterns), settings.hash_chunk_files)
     more = True
     try:
         while True:
-            if more:
+            if quarantine:  # suspects of a worker crash: one at a time, nothing else in flight
+                if not pending:
+                    alone.add(resubmit(*quarantine.popleft()))
+            elif more:
                 more = fill(scan_chunks)
             elif to_measure:
                 fill(iter(()))
             if not pending:
-                if not more and not to_measure:
+                if not more and not to_measure and not quarantine:
                     break
                 continue
             for fut in backend.wait_some(pending):
                 kind, payload = pending.pop(fut)
+                ran_alone = fut in alone
+                alone.discard(fut)
                 try:
                     result = fut.result()
                 except Exception as exc:
-                    failed(kind, payload, exc)
+                    failed(kind, payload, exc, ran_alone)
                     continue
                 crashes = 0
                 if kind == "hash":

@@ -38,7 +38,7 @@ from pipeline.reader import Frame, FrameError, read_frame
 from pipeline.timeutil import iso_time
 
 __all__ = ["CapStats", "FrameRecord", "JSON_KEYS", "MEASUREMENT_VERSION", "cap_statistics", "measure_frame",
-           "measure_file", "skipped_record", "profile_edges_deg"]
+           "measure_file", "skipped_record", "error_record", "profile_edges_deg"]
 
 #: Version of the numbers the measurement code (reader, projection, measure) gives; an integer bumped by hand
 #: whenever a change to those modules changes a measured value or a skip decision (see the module docstring).
@@ -198,8 +198,18 @@ class FrameRecord:
 
 
 def skipped_record(path, reason: str, time: str | None = None) -> FrameRecord:
-    """A record for a file that could not be measured."""
+    """A record for a file that cannot be measured (bad input): permanent, stored with its reason."""
     return FrameRecord(file=str(path), status="skipped", reason=" ".join(str(reason).split()), time=time)
+
+
+def error_record(path, reason: str) -> FrameRecord:
+    """A record for a file whose measurement failed for a reason outside the file (a bug, memory).
+
+    ``status="error"``: not a result.  The store never keeps it (the file is
+    tried again on the next ingest), the ingest counts it as an error and
+    the exit code says so.
+    """
+    return FrameRecord(file=str(path), status="error", reason=" ".join(str(reason).split()))
 
 
 def _carrington_rotation(t: np.datetime64) -> float:
@@ -278,7 +288,7 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
 
 
 def measure_file(path: str | os.PathLike, settings: MeasureSettings | None = None) -> FrameRecord:
-    """Read and measure one file; bad input gives a skipped record, never an exception.
+    """Read and measure one file; never raises for one file's trouble, and tells bad input from errors.
 
     Parameters
     ----------
@@ -288,7 +298,13 @@ def measure_file(path: str | os.PathLike, settings: MeasureSettings | None = Non
     Returns
     -------
     FrameRecord
-        ``status="ok"``, or ``status="skipped"`` with a one-line ``reason``.
+        ``status="ok"``; ``status="skipped"`` with a one-line ``reason``
+        when the file is bad input (:class:`~pipeline.reader.FrameError`:
+        permanent, the store keeps it); or ``status="error"``
+        (:func:`error_record`) when the measurement failed for a reason
+        outside the file: out of memory, or an unexpected exception (a bug),
+        which is not the file's fault, so it is not a permanent skip; an
+        ingest does not store it and tries the file again next run.
     """
     settings = settings or MeasureSettings()
     try:
@@ -297,6 +313,7 @@ def measure_file(path: str | os.PathLike, settings: MeasureSettings | None = Non
     except FrameError as exc:
         return skipped_record(path, str(exc))
     except MemoryError:
-        return skipped_record(path, "out of memory while reading the image")
-    except Exception as exc:  # a batch never crashes on one file
-        return skipped_record(path, f"unexpected error: {type(exc).__name__}: {exc}")
+        return error_record(path, "out of memory while measuring")
+    except Exception as exc:  # not bad input: reported and retried, never a permanent skip nor a crash of the batch
+        msg = " ".join(str(exc).split())[:300]
+        return error_record(path, f"unexpected {type(exc).__name__} while measuring{': ' + msg if msg else ''}")

@@ -2,8 +2,13 @@
 
 from __future__ import annotations
 
+import dataclasses
+import os
+
 import numpy as np
 from astropy.io import fits
+
+from pipeline.config import MeasureSettings
 
 from tests._frames import declare_size, make_observer, write_frame
 
@@ -91,7 +96,6 @@ def record_store(path, settings=None, n: int = 40, start: int = 0, measure_versi
     :data:`pipeline.measure.MEASUREMENT_VERSION`.  Series of them need ``[series] b0_method = "visible"``
     (they carry no latitude profile).
     """
-    from pipeline.config import MeasureSettings
     from pipeline.measure import MEASUREMENT_VERSION, FrameRecord
     from pipeline.store import MeasuredFile, open_store
     from pipeline.timeutil import from_decimal_year, iso_time
@@ -111,3 +115,65 @@ def record_store(path, settings=None, n: int = 40, start: int = 0, measure_versi
         store.add(results, store.register_config(settings))
         store.commit()
     return path
+
+
+# --- injected faults inside whichever process measures a file ------------------------------------------------
+# Local workers are separate processes (forkserver), so a monkeypatch in the test process does not reach them.
+# The settings object travels to the worker with every measure task; FaultySettings carries its faults with it
+# and, when it is unpickled there, wraps pipeline.measure.read_frame in that process so that the named files
+# fail the way asked.  It has no extra dataclass field, so its configuration id is that of plain
+# MeasureSettings with the same values: a second ingest with plain settings tries the files again.
+
+#: fault -> what reading the file does: the worker process dies (os._exit), RuntimeError, MemoryError, or
+#: ("replace", NEW) the file is read and then replaced by the file NEW (before its reading ends)
+FAULTS = ("exit", "runtime", "memory", "replace")
+
+
+def _faulty_read_frame(real):
+    def read_frame(path, settings=None, *args, **kwargs):
+        fault = getattr(settings, "_faults", {}).get(os.path.basename(os.fspath(path)))
+        kind = fault[0] if isinstance(fault, tuple) else fault
+        if kind == "exit":
+            os._exit(70)  # the worker process dies at once, as on a segfault or the OOM killer
+        if kind == "runtime":
+            raise RuntimeError("injected fault")
+        if kind == "memory":
+            raise MemoryError()
+        frame = real(path, settings, *args, **kwargs)
+        if kind == "replace":
+            os.replace(fault[1], path)
+        return frame
+    read_frame.faulty = True
+    return read_frame
+
+
+def _install_faults() -> None:
+    import pipeline.measure as measure
+
+    if not getattr(measure.read_frame, "faulty", False):
+        measure.read_frame = _faulty_read_frame(measure.read_frame)
+
+
+def _rebuild_faulty(values: dict, faults: dict):
+    _install_faults()  # runs in the process that unpickles the settings: the worker
+    return faulty_settings(faults, MeasureSettings(**values))
+
+
+class FaultySettings(MeasureSettings):
+    """MeasureSettings whose files named in ``_faults`` (base name -> one of :data:`FAULTS`) fail when read."""
+
+    def __reduce__(self):
+        return _rebuild_faulty, (dataclasses.asdict(self), dict(self._faults))
+
+
+def faulty_settings(faults: dict, base: MeasureSettings | None = None) -> FaultySettings:
+    """``base`` (default MeasureSettings()) with injected faults, e.g. ``{"kvm_0003.fits": "exit"}``.
+
+    ``("replace", NEW)`` needs NEW on the same file system (``os.replace``) and outside the ingested paths.
+    """
+    unknown = sorted({str(f[0] if isinstance(f, tuple) else f) for f in faults.values()} - set(FAULTS))
+    if unknown:
+        raise ValueError(f"faults: got {unknown}; valid faults are {FAULTS}")
+    obj = FaultySettings(**dataclasses.asdict(base or MeasureSettings()))
+    object.__setattr__(obj, "_faults", dict(faults))
+    return obj

@@ -13,11 +13,12 @@ import time
 
 import pytest
 
-from pipeline.batch import DEFAULT_PATTERNS, IngestError, IngestSettings, ingest, scan_paths
+from pipeline.batch import (CHANGED_WHILE_READ, DEFAULT_PATTERNS, IngestError, IngestSettings, IngestSummary,
+                            hash_files, ingest, measure_files, scan_paths)
 from pipeline.config import ConfigError, MeasureSettings
-from pipeline.measure import JSON_KEYS, measure_file
-from pipeline.store import open_store
-from tests._ingest_archive import HOSTILE_REASONS, good_archive, hostile_files, write_good
+from pipeline.measure import JSON_KEYS, MEASUREMENT_VERSION, measure_file
+from pipeline.store import file_digest, open_store
+from tests._ingest_archive import HOSTILE_REASONS, faulty_settings, good_archive, hostile_files, write_good
 
 TWO = IngestSettings(workers=2, measure_chunk_files=2, hash_chunk_files=8)
 
@@ -177,6 +178,166 @@ def test_changed_configuration_detected_and_remeasured(archive, tmp_path):
 def test_missing_path_refused_before_work(tmp_path):
     with pytest.raises(IngestError, match="no such file or directory"):
         _ingest([tmp_path / "nope"], tmp_path / "s")
+
+
+# --- errors versus bad input, worker failures (issue 17) ---------------------------------------------
+# The rules are the project's own (issue 17: bad input is permanent and carries its reason; errors are retried
+# on the next run and counted; a file that crashes a worker is isolated and retried; a file that changed while
+# it was read is caught).  Reason wording: regression only.
+
+def _reported():
+    seen = []
+    return seen, lambda path, reason: seen.append((os.path.basename(path), reason))
+
+
+def _small(archive_dir, n):
+    root, good, _ = archive_dir
+    return good[:n]
+
+
+def test_errors_are_counted_not_stored_and_retried(archive, tmp_path):
+    """An unexpected exception (RuntimeError) or MemoryError inside a worker process is an error, not a skip."""
+    files = _small(archive, 4)
+    store = tmp_path / "s"
+    faults = faulty_settings({files[1].name: "runtime", files[2].name: "memory"})
+    skipped, on_skip = _reported()
+    errors, on_error = _reported()
+    s = _ingest(files, store, faults, on_skip=on_skip, on_error=on_error)
+    assert (s.new_ok, s.new_skipped, s.errors, s.unreadable, s.exit_code) == (2, 0, 2, 0, 1)
+    assert s.error_reasons == {"unexpected RuntimeError while measuring": 1, "out of memory while measuring": 1}
+    assert skipped == [] and sorted(errors) == sorted([
+        (files[1].name, "unexpected RuntimeError while measuring: injected fault"),
+        (files[2].name, "out of memory while measuring")])
+    assert s.line().endswith(", 0 already known, 2 errors (1 unexpected RuntimeError while measuring, 1 out of "
+                             "memory while measuring; not stored, tried again next run)")
+    with open_store(store) as st:
+        assert (st.count("ok"), st.count("skipped")) == (2, 0)  # nothing permanent about an error
+    again = _ingest(files, store)  # the cause is gone: the two files are measured now
+    assert (again.new_ok, again.known, again.errors, again.exit_code) == (2, 2, 0, 0)
+    rows = {os.path.basename(r["file"]): r for r in _rows(store)}
+    assert {k: rows[files[1].name][k] for k in JSON_KEYS} == measure_file(files[1]).to_json()
+
+
+def test_a_file_that_kills_its_worker_is_isolated_and_retried(archive, tmp_path):
+    """os._exit in the worker for one file: the files sharing its task are stored, it is not, and is tried
+    again by the next run."""
+    files = _small(archive, 6)
+    store = tmp_path / "s"
+    three = IngestSettings(workers=2, measure_chunk_files=3, hash_chunk_files=8)
+    errors, on_error = _reported()
+    s = _ingest(files, store, faulty_settings({files[1].name: "exit"}), three, on_error=on_error)
+    assert (s.new_ok, s.errors, s.exit_code) == (5, 1, 1)
+    assert len(errors) == 1 and errors[0][0] == files[1].name
+    assert errors[0][1].startswith("worker process died while measuring it (BrokenProcessPool")
+    assert s.error_reasons == {"worker process died while measuring it": 1}
+    stored = {os.path.basename(r["file"]) for r in _rows(store)}
+    assert stored == {p.name for p in files} - {files[1].name}
+    again = _ingest(files, store, settings=three)
+    assert (again.new_ok, again.known, again.errors) == (1, 5, 0)
+    assert len(_rows(store)) == 6
+
+
+def test_several_killers_and_copies_of_one(archive, tmp_path):
+    """Two killers in one task, one of them also at a second path: each is an error, every other file stored."""
+    root, good, _ = archive
+    arch = tmp_path / "arch"
+    arch.mkdir()
+    for p in good[:5]:
+        shutil.copy2(p, arch / p.name)
+    shutil.copy2(good[3], arch / "zz_copy_of_3.fits")  # same bytes: joins the measurement of kvm_0003
+    one = IngestSettings(workers=1, measure_chunk_files=4, hash_chunk_files=16)
+    s = _ingest([arch], tmp_path / "s", faulty_settings({good[1].name: "exit", good[3].name: "exit"}), one)
+    assert (s.new_ok, s.errors, s.known) == (3, 3, 0)  # the copy shares its content's outcome
+    assert {os.path.basename(r["file"]) for r in _rows(tmp_path / "s")} == {good[0].name, good[2].name,
+                                                                             good[4].name}
+
+
+def test_file_replaced_between_hashing_and_measuring_is_hashed_again(archive, tmp_path):
+    """The digest stored names the bytes that were measured (in-process worker function)."""
+    p = tmp_path / "f.fits"
+    shutil.copy2(archive[1][0], p)
+    [(path, size, mtime_ns, digest, err)] = hash_files([str(p)])
+    write_good(p, 41)
+    os.utime(p, ns=(mtime_ns + 5_000_000_000, mtime_ns + 5_000_000_000))
+    [r] = measure_files([(path, size, mtime_ns, digest)], MeasureSettings())
+    assert err is None and r.digest == file_digest(p) != digest
+    assert (r.size, r.mtime_ns) == (p.stat().st_size, p.stat().st_mtime_ns)
+    assert r.record == measure_file(p).to_dict() and r.measure_version == MEASUREMENT_VERSION
+
+
+def test_file_changed_while_it_was_read_is_not_stored(archive, tmp_path):
+    """A file replaced by other bytes after the reader read it (inside the worker): its record would describe
+    bytes that no digest names, so it is not stored; the next run measures what is there."""
+    files = _small(archive, 3)
+    arch = tmp_path / "arch"
+    arch.mkdir()
+    for p in files:
+        shutil.copy2(p, arch / p.name)
+    target = arch / files[1].name
+    new = write_good(tmp_path / "new.fits", 42)
+    os.utime(new, ns=(1_900_000_000_000_000_000,) * 2)  # another mtime than the file it replaces
+    store = tmp_path / "s"
+    errors, on_error = _reported()
+    s = _ingest([arch], store, faulty_settings({target.name: ("replace", str(new))}), on_error=on_error)
+    assert (s.new_ok, s.unreadable, s.errors, s.exit_code) == (2, 1, 0, 1)
+    assert errors == [(target.name, CHANGED_WHILE_READ)] and s.unreadable_reasons == {CHANGED_WHILE_READ: 1}
+    assert "1 not stored (1 file changed while it was read; tried again next run)" in s.line()
+    again = _ingest([arch], store)
+    assert (again.new_ok, again.known) == (1, 2)
+    rows = {os.path.basename(r["file"]): r for r in _rows(store)}
+    assert {k: rows[target.name][k] for k in JSON_KEYS} == measure_file(target).to_json()
+    assert rows[target.name]["digest"] == file_digest(target)
+
+
+def test_summary_exit_code_and_line_with_errors():
+    # exit codes shared by every sub-command (pipeline.cli docstring): 1 = some input not measured
+    s = IngestSummary(new_ok=3, errors=1)
+    s.error_reasons["worker process died while measuring it"] += 1
+    assert s.exit_code == 1
+    assert s.line() == ("ingest: 3 new (3 ok, 0 skipped), 0 already known, 1 error (1 worker process died while "
+                        "measuring it; not stored, tried again next run)")
+    assert IngestSummary(new_ok=3).exit_code == 0
+
+
+# --- measurement-code version (issue 17) -------------------------------------------------------------
+
+def _set_version(store, version):
+    con = sqlite3.connect(store)
+    con.execute("UPDATE files SET measure_version = ?", (version,))
+    con.commit()
+    con.close()
+
+
+def test_records_of_another_measurement_version_are_measured_again(archive, tmp_path):
+    """A change of the measurement code's version re-measures, as a change of settings does (issue 17)."""
+    files = _small(archive, 3)
+    store = tmp_path / "s"
+    _ingest(files, store)
+    _set_version(store, MEASUREMENT_VERSION - 1)
+    with pytest.raises(IngestError, match=rf"3 records measured under other settings than those in force \(3 with "
+                                          rf"measurement code version {MEASUREMENT_VERSION - 1} \(records\) vs "
+                                          rf"{MEASUREMENT_VERSION} \(in force\)\).*--remeasure"):
+        _ingest(files, store)
+    s = _ingest(files, store, remeasure=True)
+    assert (s.new_ok, s.remeasured, s.known, s.stale_config) == (3, 3, 0, 0)
+    with open_store(store) as st:
+        assert st.summary()["measurement_versions"] == {MEASUREMENT_VERSION: 3}
+
+
+def test_schema_1_store_needs_remeasure(archive, tmp_path):
+    """Stores written before the version was kept: upgraded, their records' version unknown, so re-measured."""
+    files = _small(archive, 2)
+    store = tmp_path / "s"
+    _ingest(files, store)
+    con = sqlite3.connect(store)
+    con.execute("ALTER TABLE files DROP COLUMN measure_version")
+    con.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
+    con.commit()
+    con.close()
+    with pytest.raises(IngestError, match=r"2 with measurement code version unknown \(records\) vs"):
+        _ingest(files, store)
+    s = _ingest(files, store, remeasure=True)
+    assert (s.new_ok, s.remeasured) == (2, 2)
 
 
 # --- local and distributed agree ------------------------------------------------------------------

@@ -19,9 +19,12 @@ def add_parser(sub) -> None:
         description="Scan directories (recursively), files and glob patterns; measure every file whose content "
                     "is not in the store yet (files are identified by their bytes, so a renamed file is not "
                     "measured twice and a changed one is measured again) and record each result, measured or "
-                    "skipped with its reason. Safe to interrupt: run it again to resume. Exit 0 when no new "
-                    "file was skipped, 1 when any was (see `polecast export STORE --skipped`), 2 for a usage, "
-                    "configuration, store-in-use or scheduler error.")
+                    "skipped with its reason (bad input, permanent). A file that cannot be read, changes while "
+                    "it is read, or whose measurement fails for a reason outside the file (an error: a bug, "
+                    "out of memory, a worker that died) is reported and not stored, and is tried again on the "
+                    "next run. Safe to interrupt: run it again to resume. Exit 0 when every file was measured "
+                    "or known, 1 when any was skipped, not stored or an error (see `polecast export STORE "
+                    "--skipped`), 2 for a usage, configuration, store-in-use or scheduler error.")
     p.add_argument("paths", nargs="+", metavar="PATH", help="directories, FITS files or glob patterns")
     p.add_argument("--store", required=True, metavar="STORE", help="the store file (SQLite; created if missing)")
     p.add_argument("--pattern", action="append", metavar="GLOB",
@@ -50,21 +53,24 @@ def run(args) -> int:
     config = load_config(args.config, ingest=overrides)
     shown = [0]
 
-    def on_skip(path, reason):
-        shown[0] += 1
-        if shown[0] <= _MAX_SKIP_LINES:
-            print(f"polecast ingest: skipped {path}: {reason}", file=sys.stderr)
+    def tell(what):
+        def report(path, reason):
+            shown[0] += 1
+            if shown[0] <= _MAX_SKIP_LINES:
+                print(f"polecast ingest: {what} {path}: {reason}", file=sys.stderr)
+        return report
 
     try:
         with open_store(args.store, "a") as store:
             summary = ingest(args.paths, store, config.measure, config.ingest, scheduler=args.scheduler,
-                             remeasure=args.remeasure, progress=sys.stdout.isatty(), on_skip=on_skip)
+                             remeasure=args.remeasure, progress=sys.stdout.isatty(), on_skip=tell("skipped"),
+                             on_error=tell("not stored"))
     except (IngestError, StoreError) as exc:
         print(f"polecast ingest: {exc}", file=sys.stderr)
         return EXIT_USAGE
     if shown[0] > _MAX_SKIP_LINES:
-        print(f"polecast ingest: ... and {shown[0] - _MAX_SKIP_LINES} more skipped; "
-              f"`polecast export {args.store} --skipped --out FILE` lists them all", file=sys.stderr)
+        print(f"polecast ingest: ... and {shown[0] - _MAX_SKIP_LINES} more skipped or not stored; "
+              f"`polecast export {args.store} --skipped --out FILE` lists the skipped ones", file=sys.stderr)
     if summary.stale_config:
         print(f"polecast ingest: {summary.stale_config} records of other settings were not found under "
               f"the given paths and were kept as they are", file=sys.stderr)

@@ -27,8 +27,9 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def write_records(records, fmt: str, stream=sys.stdout) -> None:
-    """Print records as one JSON array or as CSV with a header line."""
+def write_records(records, fmt: str, stream=None) -> None:
+    """Print records as one JSON array or as CSV with a header line (``stream`` default: the current stdout)."""
+    stream = sys.stdout if stream is None else stream
     rows = [{k: finite_or_none(v) for k, v in r.to_json().items()} for r in records]
     if fmt == "json":
         json.dump(rows, stream, indent=1)
@@ -46,5 +47,6 @@ def run(args) -> int:
     write_records(records, args.format)
     for r in records:
         if r.status != "ok":
-            print(f"polecast measure: skipped {r.file}: {r.reason}", file=sys.stderr)
+            print(f"polecast measure: {'skipped' if r.status == 'skipped' else 'failed'} {r.file}: {r.reason}",
+                  file=sys.stderr)
     return EXIT_OK if all(r.status == "ok" for r in records) else EXIT_SKIPPED
