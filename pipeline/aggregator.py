@@ -40,7 +40,8 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from pipeline.b0 import B0_METHODS, SERIES_METHODS, fill_estimates, fill_hidden_bins, pole_estimates
+from pipeline.b0 import (B0_METHODS, SERIES_METHODS, common_cap_latitude, common_profile_edges, fill_estimates,
+                         fill_hidden_bins, pole_estimates)
 from pipeline.config import ConfigError, check_choice, check_number
 from pipeline.smoothing import SMOOTHING_METHODS, WIDTH_UNITS, Smoother, smooth
 from pipeline.timeutil import decimal_year, to_datetime64
@@ -217,6 +218,13 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
         are left out (counted in ``attrs["frames_left_out"]``).
     settings : SeriesSettings, optional
 
+    Raises
+    ------
+    pipeline.b0.MixedRecordsError
+        When the records used differ in cap latitude, or (``"profile"`` and
+        ``"fill"``, which read the latitude profiles) in profile bin edges:
+        a series is made from records measured one way.
+
     Returns
     -------
     xarray.Dataset
@@ -240,6 +248,9 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
     """
     settings = settings or SeriesSettings()
     good, skipped = _good_records(records)
+    common_cap_latitude(good)  # means over different caps are not one series
+    if settings.b0_method in ("profile", "fill"):
+        common_profile_edges(good)
     n = len(good)
     t = to_datetime64([r.time for r in good]) if n else np.array([], dtype="datetime64[ns]")
     if settings.b0_method in SERIES_METHODS:
@@ -342,10 +353,15 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
     ----------
     records : iterable of pipeline.measure.FrameRecord
         With latitude profiles; records that are not ``"ok"``, have no
-        profile, or whose bin edges differ from the first usable record's are
+        profile or a profile whose value count does not match its edges are
         left out (counted in ``attrs["frames_left_out"]``).
     settings : SeriesSettings, optional
         Not used yet beyond validation (kept for a uniform signature).
+
+    Raises
+    ------
+    pipeline.b0.MixedRecordsError
+        When two records' profile bin edges differ (naming both).
 
     Returns
     -------
@@ -363,16 +379,11 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
     """
     _ = settings or SeriesSettings()
     good, skipped = _good_records(records)
-    edges = None
+    edges = common_profile_edges(good)
     used = []
     for r in good:
         e = np.asarray(r.profile_edges_deg, dtype=float)
         if e.size < 2 or len(r.profile_br_gauss) != e.size - 1 or len(r.profile_area_m2) != e.size - 1:
-            skipped += 1
-            continue
-        if edges is None:
-            edges = e
-        elif e.shape != edges.shape or not np.allclose(e, edges):
             skipped += 1
             continue
         used.append(r)

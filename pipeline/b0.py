@@ -42,6 +42,11 @@ Methods (per frame and per pole):
     its bin is hidden, not a shape in latitude, so it follows a reversal
     that proceeds poleward (where a fitted shape lags or leads).  It needs
     the whole series (:func:`fill_estimates`), not one frame.
+
+Records of one series must share their cap latitude and profile bin edges:
+:func:`common_cap_latitude` and :func:`common_profile_edges` refuse a mix
+with :class:`MixedRecordsError` (naming both records and values) rather than
+take the first record's settings for all or refill one binning from another.
 """
 
 from __future__ import annotations
@@ -51,8 +56,85 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["B0_METHODS", "SERIES_METHODS", "PoleEstimate", "pole_estimates", "fill_estimates", "fill_hidden_bins",
-           "cap_mean_factor", "bin_mean_sin_power", "fit_sin_power_profile"]
+__all__ = ["B0_METHODS", "SERIES_METHODS", "PoleEstimate", "MixedRecordsError", "pole_estimates", "fill_estimates",
+           "fill_hidden_bins", "common_cap_latitude", "common_profile_edges", "cap_mean_factor",
+           "bin_mean_sin_power", "fit_sin_power_profile"]
+
+
+class MixedRecordsError(ValueError):
+    """Records of one series that were measured differently (cap latitude, profile bin edges).
+
+    The message names the two records and their values, and the fix: make a
+    series from records measured with one configuration (or re-measure).
+    """
+
+
+def _same_cap(a, b) -> bool:
+    if a is None or b is None:
+        return a is None and b is None
+    return math.isclose(float(a), float(b), rel_tol=0.0, abs_tol=1e-9)
+
+
+def _cap_text(cap) -> str:
+    return "none stated" if cap is None else f"{float(cap):g} deg"
+
+
+def common_cap_latitude(records):
+    """The cap latitude (deg) all records state, or None when they state none (or there are none).
+
+    Raises
+    ------
+    MixedRecordsError
+        When two records differ (a record that states none differs from one
+        that states a value), naming both records and values.
+    """
+    first = None
+    for r in records:
+        if first is None:
+            first = r
+        elif not _same_cap(first.cap_latitude_deg, r.cap_latitude_deg):
+            raise MixedRecordsError(
+                f"records: cap_latitude_deg differs within one series ({_cap_text(first.cap_latitude_deg)} in "
+                f"{first.file!r}, {_cap_text(r.cap_latitude_deg)} in {r.file!r}); make a series from records "
+                f"measured with one cap latitude (re-measure with ingest --remeasure)")
+    return None if first is None or first.cap_latitude_deg is None else float(first.cap_latitude_deg)
+
+
+def _describe_edges(e: np.ndarray) -> str:
+    return f"{e.size} edges {e[0]:g}..{e[-1]:g} deg"
+
+
+def common_profile_edges(records):
+    """The latitude-profile bin edges (deg) shared by every record that has a profile, or None.
+
+    Records without a profile (no edges) are passed over; see the callers
+    for what they do with them.
+
+    Raises
+    ------
+    MixedRecordsError
+        When two records' edges differ, naming both records, their edges and
+        the first bin edge that differs.
+    """
+    edges, owner = None, None
+    for r in records:
+        e = np.asarray(r.profile_edges_deg or (), dtype=float)
+        if e.size < 2:
+            continue
+        if edges is None:
+            edges, owner = e, r
+            continue
+        if e.shape != edges.shape or not np.allclose(e, edges, rtol=0.0, atol=1e-9):
+            if e.shape == edges.shape:
+                k = int(np.flatnonzero(~np.isclose(e, edges, rtol=0.0, atol=1e-9))[0])
+                where = f"; edge {k} is {edges[k]:g} deg in one, {e[k]:g} deg in the other"
+            else:
+                where = ""
+            raise MixedRecordsError(
+                f"records: latitude-profile bin edges differ within one series ({_describe_edges(edges)} in "
+                f"{owner.file!r}, {_describe_edges(e)} in {r.file!r}{where}); make a series from records "
+                f"measured with one profile binning (re-measure with ingest --remeasure)")
+    return edges
 
 
 @dataclass(frozen=True)
@@ -208,7 +290,10 @@ def _profile(record, settings) -> PoleEstimate:
     if area.size != br.size:
         return PoleEstimate(nan, nan, nan, nan)
     cap = settings.cap_latitude_deg if settings.cap_latitude_deg is not None else record.cap_latitude_deg
-    cap = 60.0 if cap is None else float(cap)
+    if cap is None:
+        raise ValueError(f"record {record.file!r}: cap_latitude_deg is not stated, so the whole-cap mean has no "
+                         f"boundary; set series.cap_latitude_deg")
+    cap = float(cap)
     bn, en, nn = _profile_hemisphere(edges, br, area, +1, settings, cap)
     bs, es, ns = _profile_hemisphere(edges, br, area, -1, settings, cap)
     return PoleEstimate(bn, bs, en, es, nn, ns)
@@ -242,7 +327,9 @@ def pole_estimates(record, settings) -> PoleEstimate:
     Raises
     ------
     ValueError
-        For an unknown method name (lists the valid ones).
+        For an unknown method name (lists the valid ones), and for
+        ``"profile"`` when neither the settings nor the record state a cap
+        latitude.
     """
     if settings.b0_method in SERIES_METHODS:
         raise ValueError(f"b0_method {settings.b0_method!r} needs the whole series: use fill_estimates")
@@ -255,26 +342,30 @@ def pole_estimates(record, settings) -> PoleEstimate:
 
 
 def _profile_arrays(records):
-    """Common bin edges and (frames x bins) arrays of bin means and areas; None if inconsistent."""
-    edges = None
-    for r in records:
-        e = np.asarray(r.profile_edges_deg or (), dtype=float)
-        if e.size >= 2:
-            edges = e
-            break
+    """Common bin edges, (frames x bins) arrays of bin means and areas, and which frames have a profile.
+
+    None when no record has a profile.  Refuses differing edges
+    (:func:`common_profile_edges`) and a profile whose value count does not
+    match its edges.
+    """
+    edges = common_profile_edges(records)
     if edges is None:
         return None
     nb = edges.size - 1
     br = np.full((len(records), nb), np.nan)
     area = np.zeros((len(records), nb))
+    has = np.zeros(len(records), dtype=bool)
     for k, r in enumerate(records):
-        e = np.asarray(r.profile_edges_deg or (), dtype=float)
-        if e.shape != edges.shape or not np.allclose(e, edges):
-            continue
+        if len(r.profile_edges_deg or ()) < 2:
+            continue  # no profile: nothing measured in latitude
+        if len(r.profile_br_gauss) != nb or len(r.profile_area_m2) != nb:
+            raise ValueError(f"record {r.file!r}: the latitude profile has {len(r.profile_br_gauss)} values and "
+                             f"{len(r.profile_area_m2)} areas for {nb} bins; re-measure the file")
         br[k] = [math.nan if v is None else float(v) for v in r.profile_br_gauss]
         area[k] = [0.0 if v is None else float(v) for v in r.profile_area_m2]
+        has[k] = True
     br[~(area > 0)] = np.nan
-    return edges, br, area
+    return edges, br, area, has
 
 
 def _fill_bins(t_years, values, max_gap_years):
@@ -362,20 +453,29 @@ def fill_estimates(records, t_years, settings) -> list:
     t_years : ndarray
         Their times, decimal years.
     settings : pipeline.aggregator.SeriesSettings
-        Uses ``cap_latitude_deg`` (None: each record's) and ``fill_max_gap_years``.
+        Uses ``cap_latitude_deg`` (None: the records' common one) and
+        ``fill_max_gap_years``.
 
     Returns
     -------
     list of PoleEstimate
         Gauss; NaN for a pole whose cap has a bin that neither the frame nor
-        any frame within the gap limit saw.
+        any frame within the gap limit saw, and for both poles of a record
+        without a latitude profile (nothing is filled in for a frame that
+        measured no bin).  The error is the record's visible-part standard
+        error (the filled bins add no scatter term).
 
     Raises
     ------
+    MixedRecordsError
+        When the records differ in cap latitude or in profile bin edges
+        (never homogenised: one would be refilled on the other's bins).
+    ValueError
+        When no cap latitude is known (neither the settings nor the records
+        state one), or a profile's value count does not match its edges.
     pipeline.config.ConfigError
         When the profiles do not cover the cap (``measure.profile_min_latitude_deg``
-        above the cap latitude), naming the fix.  The error is the record's
-        visible-part standard error (the filled bins add no scatter term).
+        above the cap latitude), naming the fix.
 
     Notes
     -----
@@ -384,14 +484,15 @@ def fill_estimates(records, t_years, settings) -> list:
     """
     n = len(records)
     nan_est = [PoleEstimate(math.nan, math.nan, math.nan, math.nan) for _ in range(n)]
+    record_cap = common_cap_latitude(records)  # the errors below are the records' own, over their cap
     arrays = _profile_arrays(records)
     if arrays is None or n == 0:
         return nan_est
-    edges, br, _area = arrays
-    cap = settings.cap_latitude_deg
+    edges, br, _area, has_profile = arrays
+    cap = settings.cap_latitude_deg if settings.cap_latitude_deg is not None else record_cap
     if cap is None:
-        caps = [r.cap_latitude_deg for r in records if r.cap_latitude_deg is not None]
-        cap = float(caps[0]) if caps else 60.0
+        raise ValueError("records: none states its cap_latitude_deg, so the whole-cap mean has no boundary; "
+                         "set series.cap_latitude_deg")
     lo, hi = edges[:-1], edges[1:]
     ty = np.asarray(t_years, dtype=float)
     out = []
@@ -411,7 +512,8 @@ def fill_estimates(records, t_years, settings) -> list:
                 f"boundary {cap:g} deg; re-measure with measure.profile_min_latitude_deg <= {cap:g} "
                 f"(ingest --remeasure), or choose b0_method 'profile' or 'visible'")
         vals = fill_hidden_bins(ty, br[:, idx], settings.fill_max_gap_years)
-        poles[name] = np.where(np.isfinite(vals).all(axis=1), (vals * band).sum(axis=1) / band.sum(), np.nan)
+        poles[name] = np.where(np.isfinite(vals).all(axis=1) & has_profile,
+                               (vals * band).sum(axis=1) / band.sum(), np.nan)
     for k, r in enumerate(records):
         out.append(PoleEstimate(float(poles["north"][k]), float(poles["south"][k]),
                                 _nan_if_none(r.north_br_error_gauss), _nan_if_none(r.south_br_error_gauss)))

@@ -134,6 +134,47 @@ def test_latitude_time_diagram_area_weighted_and_bands():
         assert np.isnan(bands["north"][L].values[1])
 
 
+def test_records_with_different_profile_edges_are_refused_by_the_diagram_and_profile_methods():
+    import dataclasses
+
+    from pipeline.b0 import MixedRecordsError
+
+    a = _rec("2034-01-10T00:00:00.000Z", 2380.2, 1.0, -1.0, profile=_profile(10.0, -10.0))
+    edges = np.asarray(a.profile_edges_deg)
+    shifted = dataclasses.replace(a, file="b", time="2034-01-20T00:00:00.000Z", carrington_rotation=2380.6,
+                                  profile_edges_deg=tuple((edges + 0.5).tolist()))
+    with pytest.raises(MixedRecordsError, match=r"bin edges differ within one series \(82 edges -90\.\.90 deg in "
+                                                r"'f2034-01-10T00:00:00.000Z', 82 edges -89.5\.\.90.5 deg in 'b'; "
+                                                r"edge 0 is -90 deg in one, -89.5 deg in the other\)"):
+        latitude_time_diagram([a, shifted])
+    with pytest.raises(MixedRecordsError, match="bin edges differ"):
+        polar_series([a, shifted], SeriesSettings(b0_method="profile"))
+    # the visible-part means do not read the profiles: the same records make a series
+    ds = polar_series([a, shifted], SeriesSettings(b0_method="visible"))
+    assert ds["north_br_rotation_gauss"].values.tolist() == [1.0]
+    # a record without a profile is still left out of the diagram and counted
+    plain = _rec("2034-01-20T00:00:00.000Z", 2380.6, 1.0, -1.0)
+    assert latitude_time_diagram([a, plain]).attrs["frames_left_out"] == 1
+
+
+def test_records_with_different_cap_latitudes_are_refused():
+    import dataclasses
+
+    from pipeline.b0 import MixedRecordsError
+
+    recs = _records()
+    recs[1] = dataclasses.replace(recs[1], cap_latitude_deg=70.0)
+    for method in ("visible", "season", "profile", "fill"):
+        with pytest.raises(MixedRecordsError, match=r"cap_latitude_deg differs within one series "
+                                                    r"\(60 deg in 'f2034-01-10T00:00:00.000Z', 70 deg in "
+                                                    r"'f2034-01-20T00:00:00.000Z'\)"):
+            polar_series(recs, SeriesSettings(b0_method=method))
+    # a record that states no cap differs from one that states 60 deg
+    recs[1] = dataclasses.replace(recs[1], cap_latitude_deg=None)
+    with pytest.raises(MixedRecordsError, match=r"\(60 deg in .*, none stated in "):
+        polar_series(recs, SeriesSettings(b0_method="visible"))
+
+
 def test_settings_validation_and_config_section():
     with pytest.raises(ConfigError, match="series.smoothing_width: got -1"):
         SeriesSettings(smoothing_width=-1)

@@ -74,6 +74,22 @@ def test_profile_without_profile_is_nan_not_an_error():
     assert math.isnan(e.north_br_gauss) and math.isnan(e.south_br_gauss)
 
 
+def test_profile_needs_a_stated_cap_latitude():
+    # a record that states no cap latitude is not given 60 deg by default: the settings must say
+    import dataclasses
+
+    edges = (-90.0, -60.0, 60.0, 61.0, 62.0, 63.0, 90.0)  # three measured north bins, 60-63 deg
+    seen = 3.0 * bin_mean_sin_power(np.array([60.0, 61.0, 62.0]), np.array([61.0, 62.0, 63.0]), 8.0)
+    br = (None, None, *seen.tolist(), None)
+    area = (0.0, 0.0, 1.0, 1.0, 1.0, 0.0)
+    rec = dataclasses.replace(_record(0.0, edges, br, area), cap_latitude_deg=None)
+    with pytest.raises(ValueError, match="record 'x': cap_latitude_deg is not stated.*set series.cap_latitude_deg"):
+        pole_estimates(rec, SeriesSettings(b0_method="profile"))
+    # with the cap stated in the settings: the fitted whole-cap mean B f(8, 60) (Svalgaard et al. 1978)
+    e = pole_estimates(rec, SeriesSettings(b0_method="profile", cap_latitude_deg=60.0))
+    assert e.north_br_gauss == pytest.approx(3.0 * cap_mean_factor(8.0, 60.0), rel=1e-9)
+
+
 def test_unknown_method():
     with pytest.raises(ConfigError, match="series.b0_method: got 'tilt'.*'profile', 'season', 'visible'"):
         SeriesSettings(b0_method="tilt")

@@ -166,3 +166,88 @@ def test_unresolved_polar_bins_are_not_used_and_give_no_band_mean():
     assert np.isnan(bands["north"][85.0].values).all()
     assert np.allclose(bands["south"][85.0].values, -3.0)
     assert np.allclose(bands["north"][80.0].values, 2.0)
+
+
+# ---- records measured differently are refused, never homogenised -------------------------------------------
+def _profile_record(name, year, cap=60.0, step=1.0, amp=5.0, profile=True):
+    """A record whose profile holds exact bin means of amp sign(lat) sin^8|lat| over |lat| >= 55 deg
+    (1-deg bins by default, one equatorial gap bin), area = zone area (regression only)."""
+    from pipeline.b0 import bin_mean_sin_power
+    from pipeline.measure import FrameRecord
+    from pipeline.timeutil import from_decimal_year, iso_time
+
+    edges = np.r_[np.arange(-90.0, -55.0 + step / 2, step), np.arange(55.0, 90.0 + step / 2, step)]
+    lo, hi = edges[:-1], edges[1:]
+    br, area = [], []
+    for a, b in zip(lo, hi):
+        if a >= 55.0 or b <= -55.0:
+            lo_abs, hi_abs = (a, b) if a >= 0 else (-b, -a)
+            br.append(float(np.sign(a + b) * amp * bin_mean_sin_power(lo_abs, hi_abs, 8.0)))
+            area.append(float(np.sin(np.radians(hi_abs)) - np.sin(np.radians(lo_abs))) * 1e18)
+        else:
+            br.append(None)
+            area.append(0.0)
+    return FrameRecord(file=name, status="ok", time=iso_time(from_decimal_year(year)), b0_deg=0.0,
+                       north_br_gauss=1.0, south_br_gauss=-1.0, north_br_error_gauss=0.1, south_br_error_gauss=0.1,
+                       carrington_rotation=2380.0 + 13.4 * (year - 2034.0), cap_latitude_deg=cap,
+                       profile_edges_deg=tuple(edges.tolist()) if profile else (),
+                       profile_br_gauss=tuple(br) if profile else (), profile_area_m2=tuple(area) if profile else ())
+
+
+def test_fill_refuses_records_with_different_cap_latitudes():
+    from pipeline.b0 import MixedRecordsError
+
+    recs = [_profile_record("a.fits", 2034.0), _profile_record("b.fits", 2034.1, cap=65.0)]
+    years = np.array([2034.0, 2034.1])
+    with pytest.raises(MixedRecordsError, match=r"^records: cap_latitude_deg differs within one series "
+                                                r"\(60 deg in 'a.fits', 65 deg in 'b.fits'\)"):
+        fill_estimates(recs, years, SeriesSettings())
+    with pytest.raises(MixedRecordsError, match="cap_latitude_deg differs"):
+        polar_series(recs, SeriesSettings(b0_method="visible"))  # every method: means over two caps
+    # one cap for all: the whole-cap mean of the binned profile is B (1 - sin^9 L) / (9 (1 - sin L))
+    # (closed form, checked against quadrature in test_b0.py)
+    same = fill_estimates([_profile_record("a.fits", 2034.0), _profile_record("c.fits", 2034.1)], years,
+                          SeriesSettings())
+    assert [e.north_br_gauss for e in same] == pytest.approx([5.0 * cap_mean_factor(8.0, 60.0)] * 2, rel=1e-12)
+
+
+def test_fill_refuses_records_with_different_profile_edges():
+    from pipeline.b0 import MixedRecordsError
+
+    recs = [_profile_record("a.fits", 2034.0), _profile_record("b.fits", 2034.1, step=5.0),
+            _profile_record("c.fits", 2034.2)]
+    with pytest.raises(MixedRecordsError, match=r"^records: latitude-profile bin edges differ within one series "
+                                                r"\(72 edges -90\.\.90 deg in 'a.fits', 16 edges -90\.\.90 deg in "
+                                                r"'b.fits'\)"):
+        fill_estimates(recs, np.array([2034.0, 2034.1, 2034.2]), SeriesSettings())
+    with pytest.raises(MixedRecordsError, match="bin edges differ"):
+        polar_series(recs)
+    # same count, one edge moved: the message names the edge
+    moved = _profile_record("d.fits", 2034.1)
+    edges = list(moved.profile_edges_deg)
+    edges[3] += 0.5
+    import dataclasses
+
+    moved = dataclasses.replace(moved, profile_edges_deg=tuple(edges))
+    with pytest.raises(MixedRecordsError, match=r"edge 3 is -87 deg in one, -86.5 deg in the other"):
+        fill_estimates([recs[0], moved], np.array([2034.0, 2034.1]), SeriesSettings())
+
+
+def test_fill_gives_no_value_to_a_record_without_a_profile():
+    # the neighbours saw every bin; a record that measured none is not filled in from them (NaN)
+    recs = [_profile_record("a.fits", 2034.0), _profile_record("b.fits", 2034.1, profile=False),
+            _profile_record("c.fits", 2034.2)]
+    est = fill_estimates(recs, np.array([2034.0, 2034.1, 2034.2]), SeriesSettings())
+    truth = 5.0 * cap_mean_factor(8.0, 60.0)
+    assert est[0].north_br_gauss == pytest.approx(truth, rel=1e-12)
+    assert est[2].south_br_gauss == pytest.approx(-truth, rel=1e-12)
+    assert math.isnan(est[1].north_br_gauss) and math.isnan(est[1].south_br_gauss)
+
+
+def test_fill_needs_a_stated_cap_latitude():
+    recs = [_profile_record("a.fits", 2034.0, cap=None), _profile_record("b.fits", 2034.1, cap=None)]
+    years = np.array([2034.0, 2034.1])
+    with pytest.raises(ValueError, match="none states its cap_latitude_deg.*set series.cap_latitude_deg"):
+        fill_estimates(recs, years, SeriesSettings())
+    est = fill_estimates(recs, years, SeriesSettings(cap_latitude_deg=70.0))
+    assert est[1].north_br_gauss == pytest.approx(5.0 * cap_mean_factor(8.0, 70.0), rel=1e-12)
