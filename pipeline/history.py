@@ -3,12 +3,16 @@
 Each forecast run with ``--history FILE`` appends one JSON object on its own
 line: the date of the newest data used, the precursor and the forecast.  The
 file is only ever opened in append mode, so earlier entries are never
-rewritten and a forecaster sees the forecast evolve month by month.
+rewritten and a forecaster sees the forecast evolve month by month.  Each
+append holds an exclusive ``flock`` on the file while it writes its line, so
+two writers never interleave their bytes (``polecast run`` also holds its
+run lock over the whole run, :mod:`pipeline.run`).
 """
 
 from __future__ import annotations
 
 import datetime as _dt
+import fcntl
 import json
 import os
 from pathlib import Path
@@ -67,7 +71,9 @@ def append_history(path: str | Path, entry: dict) -> None:
     """Append one entry as a JSON line; never rewrites what is already there.
 
     If the file's last line is incomplete (an earlier crash), the new entry
-    starts on a new line so that both stay readable.
+    starts on a new line so that both stay readable.  The line is written in
+    one ``write`` while an exclusive ``flock`` is held on the file (waiting
+    for another writer's append to finish), so concurrent appends never mix.
 
     Raises
     ------
@@ -79,7 +85,8 @@ def append_history(path: str | Path, entry: dict) -> None:
     try:
         # open in append mode only: the bytes already in the file are never touched
         with open(path, "ab") as fh:
-            if fh.tell() > 0:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX)  # released when the file is closed
+            if os.fstat(fh.fileno()).st_size > 0:
                 with open(path, "rb") as probe:
                     probe.seek(-1, os.SEEK_END)
                     if probe.read(1) != b"\n":

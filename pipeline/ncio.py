@@ -1,7 +1,9 @@
 """netCDF-4 writing shared by every stage that writes xarray objects.
 
 One engine choice and one time encoding (milliseconds since 1970 in the
-proleptic Gregorian calendar, CF conventions) for the whole project.
+proleptic Gregorian calendar, CF conventions) for the whole project.  Files
+are written to a temporary file beside the target and renamed into place
+(:func:`pipeline.jsonio.atomic_output`): a reader never sees half a file.
 """
 
 from __future__ import annotations
@@ -10,6 +12,8 @@ import importlib.util
 import os
 
 import numpy as np
+
+from pipeline.jsonio import atomic_output
 
 __all__ = ["netcdf_engine", "time_encoding", "write_netcdf"]
 
@@ -39,8 +43,14 @@ def time_encoding(ds) -> dict:
 
 
 def write_netcdf(obj, path: str | os.PathLike, engine: str | None = None) -> None:
-    """Write an xarray Dataset (or a named DataArray) to netCDF-4 with CF time encoding."""
+    """Write an xarray Dataset (or a named DataArray) to netCDF-4 with CF time encoding, atomically.
+
+    A failure while writing (full disk, an unencodable variable, an
+    interrupt) raises and leaves an existing ``path`` unchanged.
+    """
     import xarray as xr
 
     ds = obj.to_dataset(name=obj.name or "values") if isinstance(obj, xr.DataArray) else obj
-    ds.to_netcdf(path, engine=engine or netcdf_engine(), encoding=time_encoding(ds))
+    engine = engine or netcdf_engine()
+    with atomic_output(path) as tmp:
+        ds.to_netcdf(tmp, engine=engine, encoding=time_encoding(ds))

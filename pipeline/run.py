@@ -18,21 +18,49 @@ Products (all in ``run.products_dir``):
 ``config.json``          the configuration used
 ``summary.json``         reversals, forecast, truth (demo), ingest summary, cautions
 ``report/index.html``    the self-contained report and its figures
+
+One run at a time per products directory: the whole run holds an exclusive
+``flock`` on ``products_dir/.polecast-run.lock`` (:func:`run_lock`); a second
+run of the same configuration is refused at once with a one-line
+:class:`RunLockedError` (``polecast run`` exits 2) and never waits.  A dead
+process releases the lock by itself (the kernel drops ``flock`` locks when
+their holder exits).  Every product is written to a temporary file in
+``products_dir`` and renamed into place (:func:`pipeline.jsonio.atomic_output`),
+so a reader sees a whole old product or a whole new one; the forecast history
+is only ever appended to, under the same lock.
+
+The records are read under the settings in force: those of the configuration's
+``[measure]`` (:func:`pipeline.store.check_measure_settings`); a store holding
+records measured otherwise is refused with a one-line
+:class:`pipeline.store.StoreSettingsError`.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import datetime as _dt
+import fcntl
 import json
+import os
 import shutil
+import socket
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.config import ConfigError
-from pipeline.jsonio import finite_or_none, write_json
+from pipeline.jsonio import atomic_output, finite_or_none, write_json
 from pipeline.regression import CAUTIONS
 
-__all__ = ["RunSettings", "RunResult", "run_pipeline", "find_demo_data", "find_demo_config"]
+__all__ = ["RunSettings", "RunResult", "RunLockedError", "RUN_LOCK_NAME", "run_lock", "run_pipeline",
+           "find_demo_data", "find_demo_config"]
+
+#: the lock file of a run, inside the products directory
+RUN_LOCK_NAME = ".polecast-run.lock"
+
+
+class RunLockedError(RuntimeError):
+    """Another ``polecast run`` holds the products directory; ``str(exc)`` names it and the fix."""
 
 @dataclass(frozen=True)
 class RunSettings:
@@ -122,15 +150,74 @@ def _require(path: str, key: str) -> Path:
 
 
 def _truth_summary(path: str) -> dict | None:
-    if not path or not Path(path).exists():
+    """The truth of a synthetic archive (``run.truth``) for the summary; None when not configured."""
+    if not path:
         return None
-    truth = json.loads(Path(path).read_text(encoding="utf-8"))
-    finals = truth.get("final_reversals", {})
+    p = _require(path, "truth")
+    try:
+        truth = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ConfigError(f"run.truth: {path} is not readable JSON ({exc}); give the truth.json of a "
+                          f"synthetic archive or leave run.truth empty") from None
+    if not isinstance(truth, dict) or not isinstance(truth.get("final_reversals"), dict):
+        raise ConfigError(f"run.truth: {path} has no final_reversals object; give the truth.json that "
+                          f"`polecast synth` wrote, or leave run.truth empty")
+    finals = truth["final_reversals"]
     return {"reversals": {"north": finals.get("north"), "south": finals.get("south")},
             "next_amplitude": truth.get("next_amplitude"),
             "precursor_at_last_minimum": truth.get("precursor_at_last_minimum"),
+            "precursor_at_last_minimum_error": truth.get("precursor_at_last_minimum_error"),
             "last_minimum_time": truth.get("last_minimum_time"),
             "source": str(path)}
+
+
+@contextmanager
+def run_lock(products_dir):
+    """Hold the exclusive run lock of a products directory for the duration of a ``with`` block.
+
+    Parameters
+    ----------
+    products_dir : path-like
+        An existing directory; the lock file is ``products_dir/.polecast-run.lock``.
+
+    Raises
+    ------
+    RunLockedError
+        At once (never waits) when another process holds the lock; the
+        message names the holder (pid, host, since when).
+
+    Notes
+    -----
+    ``flock(2)`` locks belong to the open file and are released by the
+    kernel when the holder exits, even on SIGKILL, so a dead run never
+    leaves the directory locked.  The lock file itself is kept (removing it
+    would let two runs lock two different files of the same name).
+    """
+    path = Path(products_dir) / RUN_LOCK_NAME
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        try:
+            holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "another process"
+        except OSError:
+            holder = "another process"
+        os.close(fd)
+        raise RunLockedError(
+            f"products directory {products_dir} is in use by another `polecast run` ({holder}); wait for it "
+            f"to finish or stop it, then run again (a dead process releases the lock by itself)") from None
+    try:
+        since = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {since}".encode(), 0)
+        yield path
+    finally:
+        os.close(fd)  # releases the lock
+
+
+def _copy_file(src: Path, dst: Path) -> None:
+    with atomic_output(dst) as tmp:
+        shutil.copyfile(src, tmp)
 
 
 def _last_history_date(path: Path) -> str | None:
@@ -163,7 +250,28 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     ------
     ConfigError
         A missing input file or a bad setting (named).
+    RunLockedError
+        Another run holds the products directory (:func:`run_lock`).
+    pipeline.store.StoreSettingsError
+        The store holds records measured under other settings than
+        ``config.measure``.
+    pipeline.store.StoreError, pipeline.batch.IngestError
+        The store is unusable or locked, or the ingest failed.
     """
+    rs: RunSettings = config.run
+    if not rs.archive:
+        raise ConfigError("run.archive: empty; list the folders, files or glob patterns of magnetograms")
+    _require(rs.sunspots, "sunspots")      # configuration errors first: nothing is created for them
+    _require(rs.calibration, "calibration")
+    truth = _truth_summary(rs.truth)
+    out = Path(rs.products_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    with run_lock(out):
+        return _run_locked(config, truth, progress=progress, on_skip=on_skip)
+
+
+def _run_locked(config, truth: dict | None, *, progress: bool, on_skip) -> RunResult:
+    """The stages of :func:`run_pipeline`, with the run lock held."""
     from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
@@ -173,15 +281,11 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     from pipeline.ncio import write_netcdf
     from pipeline.regression import forecast_amplitude, read_calibration_csv
     from pipeline.reversal import band_reversals, series_reversals
-    from pipeline.store import open_store
+    from pipeline.store import check_measure_settings, open_store
 
     rs: RunSettings = config.run
-    if not rs.archive:
-        raise ConfigError("run.archive: empty; list the folders, files or glob patterns of magnetograms")
-    sunspots = _require(rs.sunspots, "sunspots")
-    calibration = _require(rs.calibration, "calibration")
+    sunspots, calibration = Path(rs.sunspots), Path(rs.calibration)
     out = Path(rs.products_dir)
-    out.mkdir(parents=True, exist_ok=True)
     Path(rs.store).parent.mkdir(parents=True, exist_ok=True)
     messages: list[str] = []
 
@@ -191,7 +295,8 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
                          scheduler=rs.scheduler or None, remeasure=rs.remeasure, progress=progress,
                          on_skip=on_skip)
     with open_store(rs.store, "r") as store:
-        records = list(store.iter_records())
+        measure = check_measure_settings(store, config.measure)  # records of other settings: refused
+        records = list(store.iter_records(measure=measure))
     if not records:
         raise ConfigError(f"run.archive: no file under {', '.join(rs.archive)} could be measured")
 
@@ -230,7 +335,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
                     skipped_rows=list(table.problems))
     forecast = finite_or_none(forecast)
     write_json(out / "forecast.json", forecast)
-    shutil.copyfile(calibration, out / "calibration.csv")
+    _copy_file(calibration, out / "calibration.csv")
 
     # 6. history: one entry per new data date, never rewritten
     history = Path(rs.history) if rs.history else out / "forecast_history.jsonl"
@@ -252,7 +357,6 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
         "frames": len(records),
         "cautions": CAUTIONS,
     }
-    truth = _truth_summary(rs.truth)
     if truth is not None:
         summ["truth"] = truth
     write_json(out / "summary.json", summ)
@@ -260,7 +364,7 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     if rs.report:
         from pipeline.report import build_report
 
-        report = build_report(rs.store, out / "report", products_dir=out, settings=config.report)
+        report = build_report(rs.store, out / "report", products_dir=out, settings=config.report, config=config)
     return RunResult(summary.exit_code, summary.line(), finite_or_none(summ), out, report, messages)
 
 

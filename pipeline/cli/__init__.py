@@ -6,7 +6,9 @@ callable ``(args) -> int`` returning the exit code.
 
 Exit codes shared by every sub-command: 0 success, 1 some input was skipped
 or a check failed (the output still says which), 2 usage or configuration
-error.
+error (one line on stderr), 130 interrupted by SIGINT (Ctrl-C; 128 + the
+signal number, the shells' convention): one line on stderr, no traceback,
+and whatever a command had committed (the store's finished records) is kept.
 """
 
 from __future__ import annotations
@@ -17,9 +19,11 @@ import sys
 
 from pipeline import __version__
 
-__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE"]
+__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE", "EXIT_INTERRUPTED"]
 
 EXIT_OK, EXIT_SKIPPED, EXIT_USAGE = 0, 1, 2
+#: SIGINT: 128 + 2 (common practice of POSIX shells, no source)
+EXIT_INTERRUPTED = 130
 
 #: sub-command modules, in the order of the data flow
 COMMANDS = ("measure", "synth", "ingest", "export", "series", "reversals", "cycles", "forecast",
@@ -52,8 +56,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"polecast {args.command}: configuration error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(f"polecast {args.command}: interrupted", file=sys.stderr)
-        return 130
+        print(f"polecast {args.command}: interrupted; what was committed is kept, run again to carry on",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED
 
 
 if __name__ == "__main__":  # pragma: no cover

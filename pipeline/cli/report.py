@@ -17,7 +17,10 @@ def add_parser(sub) -> None:
                     "diagnostics figures and write DIR/index.html (figures embedded, no external resources) "
                     "from a store and, when given, the products directory of `polecast run`. Products that "
                     "are missing are recomputed from the store (series, latitude-time diagram, reversals) or "
-                    "left out with a note. Exit 0 ok, 2 usage error (missing store, bad configuration).")
+                    "left out with a note. The store is read under the measure settings in force: those of "
+                    "the products' config.json, else of --config, else the store's own. Exit 0 ok, 2 usage "
+                    "error (one line: missing store, bad configuration, an unreadable or invalid config.json "
+                    "among the products, a store measured under other settings).")
     p.add_argument("store", metavar="STORE", help="store file written by `polecast ingest`")
     p.add_argument("--out", metavar="DIR", required=True, help="output directory (index.html, figures/)")
     p.add_argument("--products", metavar="DIR", help="products directory written by `polecast run`")

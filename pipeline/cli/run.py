@@ -17,8 +17,12 @@ def add_parser(sub) -> None:
     p = sub.add_parser("run", help="the whole job as a configuration says (incremental)",
                        description="Ingest (only new files) -> polar series -> reversals -> cycle landmarks -> "
                                    "precursor -> forecast (appending to the forecast history) -> report, as the "
-                                   "TOML configuration says. Exit 0 ok, 1 when new files were skipped, 2 for a "
-                                   "configuration or usage error.")
+                                   "TOML configuration says. One run at a time per products directory: a second "
+                                   "run while one holds it is refused at once (exit 2). Exit 0 ok, 1 when new files "
+                                   "were skipped, 2 for a configuration or usage error (one line on stderr: a "
+                                   "missing input, a bad setting, a store measured under other settings, a store "
+                                   "or products directory in use), 130 when interrupted (committed work is "
+                                   "kept).")
     p.add_argument("config", metavar="CONFIG.toml", help="configuration file (see configs/example.toml)")
     p.set_defaults(func=run)
     d = sub.add_parser("demo", help="run the embedded demo (synthetic star, fictional magnetograph)",
@@ -45,11 +49,11 @@ def _fmt_crossing(c):
     return f"{c['time_iso']} ({c['time']:.3f}, interval {c['low']:.3f}-{c['high']:.3f})"
 
 
-def print_outcome(result, stream=sys.stdout) -> None:
-    """Forecast, reversal epochs (and the truth when known) and where the products are."""
+def print_outcome(result, stream=None) -> None:
+    """Forecast, reversal epochs (and the truth when known) and where the products are (default: stdout)."""
     s = result.summary
     f = s["forecast"]
-    w = stream.write
+    w = (stream or sys.stdout).write
     w(f"{result.ingest_line}\n")
     w(f"frames measured in the store: {s['frames']}\n")
     for pole in ("north", "south", "dipole"):
@@ -87,7 +91,8 @@ def _execute(config) -> int:
         result = run_pipeline(config, progress=sys.stdout.isatty(), on_skip=_on_skip_printer())
     except ConfigError:
         raise
-    except (ValueError, RuntimeError, OSError) as exc:  # StoreError / IngestError are RuntimeErrors
+    # StoreError (StoreLockedError, StoreSettingsError), IngestError and RunLockedError are RuntimeErrors
+    except (ValueError, RuntimeError, OSError) as exc:
         print(f"polecast: {exc}", file=sys.stderr)
         return EXIT_USAGE
     for m in result.messages:

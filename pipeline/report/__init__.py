@@ -5,8 +5,17 @@ directory (any file may be missing) and the store, draws the five figures
 (:mod:`pipeline.report.figures`) and writes ``index.html``
 (:mod:`pipeline.report.html`) with the figures embedded.  On a bare store it
 recomputes the series, the latitude-time diagram and the reversals with the
-configuration's (default) settings, so ``polecast report STORE --out DIR``
-works without products.
+given configuration's settings (the defaults without one), so
+``polecast report STORE --out DIR`` works without products.
+
+Settings are never guessed: the products' ``config.json`` (the configuration
+they were made with) must be readable and valid, or the report stops with a
+:class:`pipeline.config.ConfigError` naming the section and the reason.  The
+store is read under the measure settings in force: ``config.json``'s
+``[measure]``, else the given configuration's, else the store's own
+(:func:`pipeline.store.check_measure_settings`); a store holding records
+measured otherwise is refused (:class:`pipeline.store.StoreSettingsError`).
+Every file is written atomically (:func:`pipeline.jsonio.atomic_output`).
 
 Products read from ``products_dir`` (see :data:`PRODUCT_FILES`):
 
@@ -25,15 +34,14 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline import __version__
 from pipeline.config import ConfigError, check_number
 
-__all__ = ["ReportSettings", "Products", "PRODUCT_FILES", "FIGURE_FILES", "VERSION_PACKAGES", "build_report",
-           "load_products", "package_versions"]
+__all__ = ["ReportSettings", "Products", "RenderedReport", "PRODUCT_FILES", "FIGURE_FILES", "VERSION_PACKAGES",
+           "build_report", "render_report", "draw_figures", "load_products", "package_versions"]
 
 #: product key -> file name inside the products directory
 PRODUCT_FILES = {
@@ -110,6 +118,12 @@ def _read_json(path: Path):
     return json.loads(path.read_text(encoding="utf-8"))
 
 
+#: what reading a bad product raises: unreadable or undecodable file (OSError, UnicodeDecodeError), bad JSON
+#: (json.JSONDecodeError), a file that netCDF/HDF5 or xarray cannot open or decode (OSError, ValueError,
+#: KeyError for a missing variable), a calibration table with bad rows or columns (ValueError)
+_PRODUCT_ERRORS = (OSError, ValueError, KeyError)
+
+
 def _load_one(key: str, path: Path, notes: list):
     import xarray as xr
 
@@ -136,15 +150,27 @@ def _load_one(key: str, path: Path, notes: list):
     return obj
 
 
-def _history_elsewhere(root: Path) -> Path | None:
-    """The history file named by ``run.history`` of the products' ``config.json``, when it is elsewhere."""
+def _read_config_json(path: Path) -> dict:
+    """``config.json`` of a products directory; ConfigError (with the reason) when it cannot be used."""
     try:
-        name = (_read_json(root / PRODUCT_FILES["config"]).get("run") or {}).get("history")
-    except (OSError, ValueError, AttributeError):
-        return None
+        obj = _read_json(path)
+    except (OSError, ValueError) as exc:  # ValueError: UnicodeDecodeError, json.JSONDecodeError
+        raise ConfigError(f"{path}: unreadable ({' '.join(str(exc).split())[:200]}); the report needs the "
+                          f"settings the products were made with: fix the file or write the products again "
+                          f"with `polecast run`") from None
+    if not isinstance(obj, dict):
+        raise ConfigError(f"{path}: got a JSON {type(obj).__name__}; expected the object of Config.to_dict() "
+                          f"(sections such as measure, series, run)")
+    return obj
+
+
+def _history_elsewhere(root: Path, config: dict) -> Path | None:
+    """The history file named by ``run.history`` of the products' ``config.json``, when it is elsewhere."""
+    run = config.get("run")
+    name = run.get("history") if isinstance(run, dict) else None
     if not name:
         return None
-    path = Path(name)
+    path = Path(str(name))
     return path if path.is_absolute() else root / path
 
 
@@ -159,6 +185,18 @@ def load_products(products_dir) -> Products:
     Returns
     -------
     Products
+
+    Raises
+    ------
+    pipeline.config.ConfigError
+        ``config.json`` exists but is not a readable JSON object: the
+        settings of the products are unknown, so nothing is guessed.
+
+    Notes
+    -----
+    A product that cannot be read (:data:`_PRODUCT_ERRORS`) is left out with
+    its reason; any other exception is a bug and propagates, with the
+    product's file named in the exception's notes.
     """
     out = Products()
     if products_dir is None:
@@ -169,18 +207,28 @@ def load_products(products_dir) -> Products:
     if not root.is_dir():
         out.notes.append(f"products directory {root} does not exist: products recomputed from the store")
         return out
+    config_path = root / PRODUCT_FILES["config"]
+    if config_path.is_file():
+        out.config = _read_config_json(config_path)
+    else:
+        out.notes.append(f"{PRODUCT_FILES['config']}: not in the products directory")
     for key, name in PRODUCT_FILES.items():
+        if key == "config":
+            continue
         path = root / name
-        if key == "history" and not path.is_file():
-            path = _history_elsewhere(root) or path
+        if key == "history" and not path.is_file() and out.config is not None:
+            path = _history_elsewhere(root, out.config) or path
         if not path.is_file():
             out.notes.append(f"{name}: not in the products directory")
             continue
         try:
             setattr(out, key, _load_one(key, path, out.notes))
-        except Exception as exc:  # a bad product is left out with a reason; the report carries on
+        except _PRODUCT_ERRORS as exc:  # a bad product is left out with a reason; the report carries on
             out.notes.append(f"{name}: unreadable ({type(exc).__name__}: {' '.join(str(exc).split())[:200]}); "
                              f"left out")
+        except Exception as exc:  # not a bad file: a bug; say which product, then let it propagate
+            exc.add_note(f"while reading the product {path}")
+            raise
     return out
 
 
@@ -200,40 +248,107 @@ def package_versions() -> dict:
     return out
 
 
-def _config_from_dict(d: dict | None, notes: list):
-    """A :class:`pipeline.config.Config` from ``config.json``; defaults (with a note) when it does not validate."""
+def _config_from_dict(d: dict, source: str = "config.json"):
+    """A :class:`pipeline.config.Config` from ``config.json``; ConfigError naming the section when one is invalid.
+
+    A section missing from ``d`` takes its defaults (the products were made
+    before it existed); a section present but invalid is an error, never
+    replaced by defaults.
+    """
     from pipeline.config import Config, _section_classes, settings_from_mapping
 
-    classes = _section_classes()
     sections = {}
-    for name, cls in classes.items():
-        table = (d or {}).get(name) or {}
+    for name, cls in _section_classes().items():
+        table = d.get(name)
+        if table is None:
+            sections[name] = cls()
+            continue
+        if not isinstance(table, dict):
+            raise ConfigError(f"{source} [{name}]: got a JSON {type(table).__name__}; expected an object of "
+                              f"settings")
         try:
             sections[name] = settings_from_mapping(cls, name, dict(table))
         except (ConfigError, TypeError, ValueError) as exc:
-            notes.append(f"config.json [{name}]: {exc}; defaults used for this section")
-            sections[name] = cls()
+            raise ConfigError(f"{source} [{name}]: {exc}; the products were made with settings this polecast "
+                              f"cannot use: fix the file or write the products again with `polecast run`") from None
     return Config(sections=sections)
 
 
-def _store_contents(store_path, need_records: bool):
-    from pipeline.store import open_store
+def _store_contents(store_path, need_records: bool, measure):
+    """Summary, skipped files and (when needed) ok records of the store under the settings in force."""
+    from pipeline.store import check_measure_settings, open_store
 
     with open_store(store_path, "r") as store:
+        in_force = check_measure_settings(store, measure)  # StoreSettingsError: records of other settings
         summary = store.summary()
-        skipped = [(r.file, r.reason) for r in store.iter_records(status="skipped")]
-        records = list(store.iter_records()) if need_records else None
-    return summary, skipped, records
+        skipped = [(r.file, r.reason) for r in store.iter_records(status="skipped", measure=in_force)]
+        records = list(store.iter_records(measure=in_force)) if need_records else None
+    return summary, skipped, records, in_force
 
 
-def _cap_latitude(config_dict: dict | None, config) -> float:
-    try:
-        v = float(((config_dict or {}).get("measure") or {}).get("cap_latitude_deg"))
-        if math.isfinite(v):
-            return v
-    except (TypeError, ValueError):
-        pass
-    return float(config.measure.cap_latitude_deg)
+@dataclass
+class RenderedReport:
+    """What :func:`render_report` made: the page, the figures (matplotlib objects) and where they went.
+
+    Attributes
+    ----------
+    index : pathlib.Path
+        ``out_dir / "index.html"``.
+    figures : dict
+        Figure key (:data:`FIGURE_FILES`) -> :class:`matplotlib.figure.Figure` drawn.
+    figure_paths : dict
+        Figure key -> PNG path.
+    products : Products
+        The products used (recomputed ones included) and the notes on them.
+    measure : pipeline.config.MeasureSettings
+        The measure settings in force for reading the store.
+    """
+
+    index: Path
+    figures: dict
+    figure_paths: dict
+    products: Products
+    measure: object
+
+
+def draw_figures(products: Products, skip_reasons: dict, settings: ReportSettings, *,
+                 cap_latitude_deg: float, method: str) -> dict:
+    """Every figure the products allow, as matplotlib Figures (nothing written).
+
+    Parameters
+    ----------
+    products : Products
+        With ``series`` and ``diagram`` set (recomputed when missing).
+    skip_reasons : dict
+        Reason group -> number of skipped files (``Store.summary()["skip_reasons"]``).
+    settings : ReportSettings
+    cap_latitude_deg : float
+        Polar-cap boundary of the measure settings in force (degrees).
+    method : str
+        Regression method when the forecast does not name one.
+
+    Returns
+    -------
+    dict
+        Figure key (:data:`FIGURE_FILES`) -> :class:`matplotlib.figure.Figure`;
+        ``calibration`` only for a table of three or more usable cycles,
+        ``history`` only for a non-empty history.
+    """
+    from pipeline.report import figures
+
+    drawn = {
+        "series": figures.polar_series_figure(products.series, settings, reversals=products.reversals,
+                                              cycles=products.cycles),
+        "latitude_time": figures.latitude_time_figure(products.diagram, settings, cap_latitude_deg=cap_latitude_deg),
+    }
+    if products.calibration is not None and products.calibration.n_cycles >= 3:
+        drawn["calibration"] = figures.calibration_figure(
+            products.calibration, settings, forecast=products.forecast,
+            method=(products.forecast or {}).get("method") or method)
+    if products.history:
+        drawn["history"] = figures.forecast_history_figure(products.history, settings)
+    drawn["diagnostics"] = figures.diagnostics_figure(products.series, skip_reasons, settings)
+    return drawn
 
 
 def build_report(store_path, out_dir, products_dir=None, settings: ReportSettings | None = None, *,
@@ -252,7 +367,7 @@ def build_report(store_path, out_dir, products_dir=None, settings: ReportSetting
         recomputed from the store, other figures and tables are left out with
         a note on the page.
     settings : ReportSettings, optional
-        Defaults to ``config.report``.
+        Defaults to the configuration's ``report`` section.
     config : pipeline.config.Config, optional
         Settings for recomputed products; defaults to the products'
         ``config.json``, else the defaults.
@@ -264,23 +379,39 @@ def build_report(store_path, out_dir, products_dir=None, settings: ReportSetting
 
     Raises
     ------
+    pipeline.config.ConfigError
+        The products' ``config.json`` is unreadable or has an invalid section.
     pipeline.store.StoreError
-        When the store is missing or not a polecast store.
+        When the store is missing or not a polecast store;
+        :class:`~pipeline.store.StoreSettingsError` when its records were
+        measured under other settings than those in force.
     """
+    return render_report(store_path, out_dir, products_dir, settings, config=config).index
+
+
+def render_report(store_path, out_dir, products_dir=None, settings: ReportSettings | None = None, *,
+                  config=None) -> RenderedReport:
+    """:func:`build_report`, returning the figures drawn and the settings used as well as the page."""
+    from pipeline.jsonio import write_text
     from pipeline.report import figures
     from pipeline.report.page import assemble_page
 
     products = load_products(products_dir)
     notes = products.notes
+    made_with = _config_from_dict(products.config) if products.config is not None else None
+    given = config is not None
     if config is None:
-        config = _config_from_dict(products.config, notes) if products.config is not None else None
-    if config is None:
-        from pipeline.config import load_config
+        if made_with is None:
+            from pipeline.config import load_config
 
-        config = load_config(None)
+            config = load_config(None)
+        else:
+            config = made_with
     settings = settings or config.report
+    # the settings in force: those the products were made with, else the given ones, else the store's own
+    measure = made_with.measure if made_with is not None else (config.measure if given else None)
     need_records = products.series is None or products.diagram is None
-    store_summary, skipped, records = _store_contents(store_path, need_records)
+    store_summary, skipped, records, measure = _store_contents(store_path, need_records, measure)
     recomputed = []
     if products.series is None:
         from pipeline.aggregator import polar_series
@@ -307,30 +438,19 @@ def build_report(store_path, out_dir, products_dir=None, settings: ReportSetting
         products.forecast = products.summary["forecast"]
         notes.append("forecast taken from summary.json")
     if recomputed:
-        notes.append(f"recomputed from the store ({', '.join(recomputed)}) with the "
-                     f"{'given' if config.source_path else 'configured or default'} settings")
+        origin = ("of the products' config.json" if made_with is not None and not given else
+                  "given" if given or config.source_path else "default")
+        notes.append(f"recomputed from the store ({', '.join(recomputed)}) with the {origin} settings")
+    if products.calibration is not None and products.calibration.n_cycles < 3:
+        notes.append(f"calibration.csv has {products.calibration.n_cycles} usable cycles: calibration figure "
+                     f"left out")
 
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"
     fig_dir.mkdir(parents=True, exist_ok=True)
-    cap = _cap_latitude(products.config, config)
-    drawn = {}
-    drawn["series"] = figures.polar_series_figure(products.series, fig_dir / FIGURE_FILES["series"], settings,
-                                                  reversals=products.reversals, cycles=products.cycles)
-    drawn["latitude_time"] = figures.latitude_time_figure(products.diagram, fig_dir / FIGURE_FILES["latitude_time"],
-                                                          settings, cap_latitude_deg=cap)
-    if products.calibration is not None and products.calibration.n_cycles >= 3:
-        method = (products.forecast or {}).get("method") or config.forecast.method
-        drawn["calibration"] = figures.calibration_figure(products.calibration, fig_dir / FIGURE_FILES["calibration"],
-                                                          settings, forecast=products.forecast, method=method)
-    elif products.calibration is not None:
-        notes.append(f"calibration.csv has {products.calibration.n_cycles} usable cycles: calibration figure "
-                     f"left out")
-    if products.history:
-        drawn["history"] = figures.forecast_history_figure(products.history, fig_dir / FIGURE_FILES["history"],
-                                                           settings)
-    drawn["diagnostics"] = figures.diagnostics_figure(products.series, store_summary.get("skip_reasons", {}),
-                                                      fig_dir / FIGURE_FILES["diagnostics"], settings)
+    drawn = draw_figures(products, store_summary.get("skip_reasons", {}), settings,
+                         cap_latitude_deg=float(measure.cap_latitude_deg), method=config.forecast.method)
+    paths = {key: figures.save_figure(fig, fig_dir / FIGURE_FILES[key], settings) for key, fig in drawn.items()}
     for key, name in FIGURE_FILES.items():
         stale = fig_dir / name
         if key not in drawn and stale.exists():
@@ -339,11 +459,9 @@ def build_report(store_path, out_dir, products_dir=None, settings: ReportSetting
     config_dict = products.config if products.config is not None else config.to_dict()
     page = assemble_page(
         settings=settings, store_path=str(store_path), products_dir=None if products_dir is None else str(products_dir),
-        products=products, store_summary=store_summary, skipped=skipped, figures=drawn,
+        products=products, store_summary=store_summary, skipped=skipped, figures=paths,
         config_dict=config_dict, versions=package_versions(),
         generated_utc=_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"))
     index = out_dir / "index.html"
-    tmp = index.with_name(index.name + ".tmp")
-    tmp.write_text(page, encoding="utf-8")
-    tmp.replace(index)
-    return index
+    write_text(index, page)
+    return RenderedReport(index=index, figures=drawn, figure_paths=paths, products=products, measure=measure)

@@ -1,10 +1,12 @@
-"""The report's figures: one pure function per figure, each writing a PNG and returning its path.
+"""The report's figures: one pure function per figure, each returning its :class:`matplotlib.figure.Figure`.
 
 Every function takes plain products (a PolarSeries :class:`xarray.Dataset`,
 the latitude-time :class:`xarray.DataArray`, the reversal / cycle / forecast
-JSON objects as dicts, a calibration table, history entries), draws with
-matplotlib's non-interactive Agg canvas (no display, no global pyplot state)
-and saves one PNG.  Times are drawn as decimal years (UTC).
+JSON objects as dicts, a calibration table, history entries) and draws on
+matplotlib's non-interactive Agg canvas (no display, no global pyplot state);
+nothing is written until :func:`save_figure` writes the PNG (atomically).
+Returning the Figure lets a caller (and the tests) read what was drawn: axes
+labels, lines, meshes and markers.  Times are drawn as decimal years (UTC).
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ __all__ = [
     "forecast_history_figure",
     "diagnostics_figure",
     "figure_size_in",
+    "save_figure",
 ]
 
 #: line colours of the three series (colour-blind-safe pairs, our own choice)
@@ -54,10 +57,27 @@ def _new_figure(settings, aspect: float, nrows: int = 1, ncols: int = 1, **kw):
     return fig, axes
 
 
-def _save(fig, out_path, settings) -> Path:
+def save_figure(fig, out_path, settings) -> Path:
+    """Write ``fig`` as a PNG at ``settings.dpi`` (atomically: a temporary file renamed into place).
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+        As returned by one of the figure functions.
+    out_path : path-like
+        The PNG; its folder is created if needed.
+    settings : pipeline.report.ReportSettings
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from pipeline.jsonio import atomic_output
+
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(out_path, dpi=int(settings.dpi), format="png", metadata={"Software": None})
+    with atomic_output(out_path) as tmp:
+        fig.savefig(tmp, dpi=int(settings.dpi), format="png", metadata={"Software": None})
     return out_path
 
 
@@ -74,8 +94,12 @@ def _no_data(ax, text: str) -> None:
     ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", color="0.4")
 
 
-def _mark_reversals(ax, result: dict | None, colour: str, label: str | None) -> None:
-    """Shaded interval and a vertical line per crossing; the final one drawn heavier."""
+def _mark_reversals(ax, result: dict | None, colour: str, label: str | None, name: str) -> None:
+    """Shaded interval and a vertical line per crossing; the final one drawn heavier.
+
+    Every artist carries a ``gid``: ``reversal:NAME`` (or ``reversal:NAME:final``) on
+    the line at the epoch, ``reversal-interval:NAME`` on the shaded span.
+    """
     if not result:
         return
     final = result.get("final") or {}
@@ -84,14 +108,17 @@ def _mark_reversals(ax, result: dict | None, colour: str, label: str | None) -> 
         if t is None:
             continue
         if lo is not None and hi is not None and hi > lo:
-            ax.axvspan(lo, hi, color=colour, alpha=_REVERSAL_ALPHA, linewidth=0)
-        is_final = final and abs(float(final.get("time", math.nan)) - float(t)) < 1e-9
+            ax.axvspan(lo, hi, color=colour, alpha=_REVERSAL_ALPHA, linewidth=0, gid=f"reversal-interval:{name}")
+        is_final = bool(final) and abs(float(final.get("time", math.nan)) - float(t)) < 1e-9
         ax.axvline(t, color=colour, linewidth=1.8 if is_final else 0.9, linestyle="-" if is_final else ":",
-                   label=label if is_final else None)
+                   label=label if is_final else None, gid=f"reversal:{name}" + (":final" if is_final else ""))
 
 
 def _mark_cycles(ax, cycles: dict | None) -> None:
-    """Vertical lines at the cycle minima (dashed) and maxima (dash-dot) of a ``polecast cycles`` object."""
+    """Vertical lines at the cycle minima (dashed) and maxima (dash-dot) of a ``polecast cycles`` object.
+
+    Only those inside the axes' time range; ``gid`` ``cycle:minimum`` or ``cycle:maximum``.
+    """
     if not cycles:
         return
     lo, hi = ax.get_xlim()
@@ -102,12 +129,12 @@ def _mark_cycles(ax, cycles: dict | None) -> None:
             if t is None or not lo <= t <= hi:
                 continue
             ax.axvline(t, color="0.35", linestyle=style, linewidth=0.9,
-                       label=name if name not in seen else None)
+                       label=name if name not in seen else None, gid=f"cycle:{key.split('_')[0]}")
             seen.add(name)
 
 
-def polar_series_figure(series, out_path, settings, *, reversals: dict | None = None,
-                        cycles: dict | None = None) -> Path:
+def polar_series_figure(series, settings, *, reversals: dict | None = None,
+                        cycles: dict | None = None) -> Figure:
     """North, south and axial-dipole polar fields per rotation, smoothed, with reversals and cycle extrema.
 
     Parameters
@@ -115,8 +142,6 @@ def polar_series_figure(series, out_path, settings, *, reversals: dict | None = 
     series : xarray.Dataset
         A PolarSeries (``rotation_time``, ``*_br_rotation_gauss``,
         ``*_br_rotation_error_gauss``, ``*_br_smooth_gauss``; gauss).
-    out_path : path-like
-        The PNG to write.
     settings : pipeline.report.ReportSettings
     reversals : dict, optional
         The ``polecast reversals`` object (``north``/``south``/``dipole`` with
@@ -126,8 +151,7 @@ def polar_series_figure(series, out_path, settings, *, reversals: dict | None = 
 
     Returns
     -------
-    pathlib.Path
-        ``out_path``.
+    matplotlib.figure.Figure
 
     Notes
     -----
@@ -155,9 +179,8 @@ def polar_series_figure(series, out_path, settings, *, reversals: dict | None = 
                 ax.plot(t, sm, color=colour, linewidth=1.8, label=f"{pole} (smoothed)")
             ax.axhline(0.0, color="0.2", linewidth=0.7)
         reversals = reversals or {}
-        _mark_reversals(top, reversals.get("north"), POLE_COLOURS["north"], "north reversal (final)")
-        _mark_reversals(top, reversals.get("south"), POLE_COLOURS["south"], "south reversal (final)")
-        _mark_reversals(bottom, reversals.get("dipole"), POLE_COLOURS["dipole"], "dipole reversal (final)")
+        for ax, pole in ((top, "north"), (top, "south"), (bottom, "dipole")):
+            _mark_reversals(ax, reversals.get(pole), POLE_COLOURS[pole], f"{pole} reversal (final)", pole)
         pad = max(0.05 * (t.max() - t.min()), 0.1)
         top.set_xlim(t.min() - pad, t.max() + pad)
         _mark_cycles(top, cycles)
@@ -171,10 +194,10 @@ def polar_series_figure(series, out_path, settings, *, reversals: dict | None = 
     b0 = "" if series is None else str(series.attrs.get("b0_method", ""))
     top.set_title(f"Polar fields per Carrington rotation (B0 method: {b0 or 'n/a'}; smoothing: "
                   f"{smoothing or 'n/a'}); shaded: reversal intervals", fontsize="small")
-    return _save(fig, out_path, settings)
+    return fig
 
 
-def latitude_time_figure(diagram, out_path, settings, *, cap_latitude_deg: float = 60.0) -> Path:
+def latitude_time_figure(diagram, settings, *, cap_latitude_deg: float = 60.0) -> Figure:
     """Latitude-time diagram of the longitude-averaged Br (gauss) with the cap boundary marked.
 
     Parameters
@@ -182,14 +205,13 @@ def latitude_time_figure(diagram, out_path, settings, *, cap_latitude_deg: float
     diagram : xarray.DataArray
         Dims ``("latitude", "rotation")``, coordinates ``latitude_lower``,
         ``latitude_upper`` (deg) and ``rotation_time``; gauss.
-    out_path : path-like
     settings : pipeline.report.ReportSettings
     cap_latitude_deg : float
         Polar-cap boundary drawn at +- this latitude (degrees).
 
     Returns
     -------
-    pathlib.Path
+    matplotlib.figure.Figure
 
     Notes
     -----
@@ -222,13 +244,13 @@ def latitude_time_figure(diagram, out_path, settings, *, cap_latitude_deg: float
         bar = fig.colorbar(mesh, ax=ax, pad=0.01)
         bar.set_label("longitude-averaged Br (G)")
         for sign in (1, -1):
-            ax.axhline(sign * cap_latitude_deg, color="k", linestyle="--", linewidth=1.0)
+            ax.axhline(sign * cap_latitude_deg, color="k", linestyle="--", linewidth=1.0, gid="cap-boundary")
         ax.set_ylim(lat_edges.min(), lat_edges.max())
     ax.set_xlabel("time (decimal year, UTC)")
     ax.set_ylabel("heliographic latitude (deg)")
     ax.set_title("Longitude-averaged radial field per Carrington rotation; dashed: polar-cap boundary "
                  f"|latitude| = {cap_latitude_deg:g} deg", fontsize="small")
-    return _save(fig, out_path, settings)
+    return fig
 
 
 def _band(fit, x_grid, level, predict):
@@ -239,15 +261,14 @@ def _band(fit, x_grid, level, predict):
     return mid, lo, hi
 
 
-def calibration_figure(table, out_path, settings, *, forecast: dict | None = None,
-                       method: str = "ols") -> Path:
+def calibration_figure(table, settings, *, forecast: dict | None = None,
+                       method: str = "ols") -> Figure:
     """Precursor against next-cycle amplitude, the fitted line, its prediction bands and the forecast.
 
     Parameters
     ----------
     table : pipeline.regression.CalibrationTable
         Past cycles: precursor (gauss) and amplitude (sunspot number).
-    out_path : path-like
     settings : pipeline.report.ReportSettings
     forecast : dict, optional
         The ``polecast forecast`` object (``precursor``, ``precursor_error``,
@@ -257,7 +278,7 @@ def calibration_figure(table, out_path, settings, *, forecast: dict | None = Non
 
     Returns
     -------
-    pathlib.Path
+    matplotlib.figure.Figure
 
     Notes
     -----
@@ -309,10 +330,10 @@ def calibration_figure(table, out_path, settings, *, forecast: dict | None = Non
     ax.set_ylabel("next-cycle amplitude (13-month smoothed sunspot number)")
     ax.set_title("Calibration of the polar-field precursor", fontsize="small")
     ax.legend(fontsize="x-small", loc="upper left", framealpha=0.85)
-    return _save(fig, out_path, settings)
+    return fig
 
 
-def forecast_history_figure(entries: list, out_path, settings) -> Path:
+def forecast_history_figure(entries: list, settings) -> Figure:
     """How the forecast moved with each update: amplitude and its 68% / 95% intervals against data date.
 
     Parameters
@@ -321,12 +342,11 @@ def forecast_history_figure(entries: list, out_path, settings) -> Path:
         :func:`pipeline.history.read_history` entries (``data_date`` ISO date,
         ``amplitude``, ``interval_68``, ``interval_95``); entries without a
         usable date or amplitude are left out.
-    out_path : path-like
     settings : pipeline.report.ReportSettings
 
     Returns
     -------
-    pathlib.Path
+    matplotlib.figure.Figure
     """
     rows = []
     for e in entries:
@@ -357,10 +377,10 @@ def forecast_history_figure(entries: list, out_path, settings) -> Path:
     ax.set_xlabel("date of the newest data used (decimal year)")
     ax.set_ylabel("forecast amplitude (sunspot number)")
     ax.set_title(f"Forecast history ({len(rows)} update{'s' if len(rows) != 1 else ''})", fontsize="small")
-    return _save(fig, out_path, settings)
+    return fig
 
 
-def diagnostics_figure(series, skip_reasons: dict, out_path, settings) -> Path:
+def diagnostics_figure(series, skip_reasons: dict, settings) -> Figure:
     """B0 angle and polar-cap coverage per frame over time, and skipped files by reason.
 
     Parameters
@@ -370,12 +390,11 @@ def diagnostics_figure(series, skip_reasons: dict, out_path, settings) -> Path:
         ``north_coverage``, ``south_coverage`` as fractions).
     skip_reasons : dict
         Reason group -> number of skipped files (e.g. ``Store.summary()["skip_reasons"]``).
-    out_path : path-like
     settings : pipeline.report.ReportSettings
 
     Returns
     -------
-    pathlib.Path
+    matplotlib.figure.Figure
     """
     fig, axes = _new_figure(settings, 0.85, 3, 1)
     ax_b0, ax_cov, ax_skip = axes[:, 0]
@@ -414,7 +433,7 @@ def diagnostics_figure(series, skip_reasons: dict, out_path, settings) -> Path:
             ax_skip.text(c, p, f" {c}", va="center", fontsize="x-small")
     ax_skip.set_xlabel("skipped files")
     ax_skip.set_title("Skipped files by reason", fontsize="small")
-    return _save(fig, out_path, settings)
+    return fig
 
 
 def _short(text: str, limit: int = 48) -> str:
