@@ -105,7 +105,8 @@ def test_fill_recovers_a_poleward_reversal_within_two_rotations(tmp_path):
         res = series_reversals(polar_series(records, settings), rs, settings.smoother)
         for pole in ("north", "south"):
             final = res[pole].to_dict()["final"]
-            assert final is not None, (method, pole)
+            # the field B sign(lat) tanh((t_rev - t)/w) ends negative in the north, positive in the south
+            assert final["sign_after"] == {"north": -1, "south": 1}[pole], (method, pole, final)
             errors[method, pole] = abs(final["time"] - truth)
     for pole in ("north", "south"):
         assert errors["fill", pole] <= 2 * ROTATION_YEARS

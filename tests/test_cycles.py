@@ -127,8 +127,9 @@ def test_noisy_synthetic_cycles_give_one_minimum_per_cycle():
         assert found.size == starts.size - 1 or found.size == starts.size, seed
         for s in starts[1:]:
             assert np.min(np.abs(found - s)) < 1.5, (seed, s, found)
-        for c in cycles[:-1]:
-            assert c["maximum_value"] is not None and c["maximum_value"] > c["minimum_value"] + 30
+        for c, nxt in zip(cycles[:-1], cycles[1:]):
+            assert c["minimum_time"] < c["maximum_time"] < nxt["minimum_time"], (seed, c)
+            assert c["maximum_value"] > c["minimum_value"] + 30, (seed, c)  # amplitudes 60-180 made here
 
 
 def test_double_peak_and_flat_minimum_give_single_extrema():
