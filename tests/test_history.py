@@ -44,3 +44,24 @@ def test_error_paths(tmp_path):
     with pytest.raises(ValueError, match="cannot append"):
         append_history(tmp_path / "no" / "such" / "dir.jsonl", history_entry(FORECAST, "2034-01-01"))
     assert read_history(tmp_path / "absent.jsonl") == ([], [])
+
+
+def test_an_append_waits_for_another_writer_holding_the_file(tmp_path):
+    """append_history takes an exclusive flock on the file (waiting, not failing): while another writer holds
+    it, nothing is written; once it lets go the entry goes in whole (flock(2); regression only)."""
+    import fcntl
+    import threading
+
+    path = tmp_path / "history.jsonl"
+    append_history(path, history_entry(FORECAST, "2034-01-31"))
+    before = path.read_bytes()
+    with open(path, "ab") as other:
+        fcntl.flock(other.fileno(), fcntl.LOCK_EX)
+        writer = threading.Thread(target=append_history, args=(path, history_entry(FORECAST, "2034-02-28")))
+        writer.start()
+        writer.join(1.0)
+        assert writer.is_alive() and path.read_bytes() == before   # still waiting for the lock
+        other.write(b'{"data_date": "2034-02-01"}\n')                # the other writer's whole line
+    writer.join(30)
+    entries, problems = read_history(path)
+    assert problems == [] and [e["data_date"] for e in entries] == ["2034-01-31", "2034-02-01", "2034-02-28"]

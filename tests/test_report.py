@@ -1,4 +1,5 @@
-"""Report: figures written as valid PNGs, the self-contained page, escaping, tolerance of missing products, CLI."""
+"""Report: what each figure draws (through its matplotlib objects), the self-contained page, escaping,
+tolerance of missing products, settings that are never guessed, atomic files, CLI."""
 
 from __future__ import annotations
 
@@ -11,13 +12,16 @@ import struct
 import subprocess
 from html.parser import HTMLParser
 
+import numpy as np
 import pytest
 
 from pipeline.cli import main
-from pipeline.config import ConfigError
-from pipeline.report import FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products
+from pipeline.config import ConfigError, MeasureSettings
+from pipeline.report import (FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products,
+                             render_report)
 from pipeline.report.html import table_html
-from tests._report_store import HOSTILE_NAME, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR, build_store, write_products
+from tests._report_store import (HOSTILE_NAME, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR, build_store,
+                                 write_products)
 
 #: PNG file signature, PNG specification (ISO/IEC 15948:2004 / W3C PNG 2nd ed., sec. 5.2)
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -25,11 +29,12 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 @pytest.fixture(scope="module")
 def built(tmp_path_factory):
+    """One rendered report of the small store and its products, shared by the tests of this module."""
     root = tmp_path_factory.mktemp("report")
     store = build_store(root)
     products = write_products(root / "products", store)
-    index = build_report(store, root / "out", products)
-    return {"root": root, "store": store, "products": products, "index": index}
+    rendered = render_report(store, root / "out", products)
+    return {"root": root, "store": store, "products": products, "index": rendered.index, "rendered": rendered}
 
 
 @pytest.fixture(scope="module")
@@ -75,17 +80,192 @@ def _png_size(data: bytes):
     return struct.unpack(">II", data[16:24])
 
 
-def test_every_figure_is_a_png_of_the_configured_size(built):
+def test_every_figure_is_the_png_of_its_figure_at_the_configured_size(built):
+    """Each PNG on disk is its Figure saved at settings.dpi: pixel size = size in inches x dots per inch, to
+    within the pixel matplotlib rounds away (common practice, no source), read from the IHDR chunk (PNG spec
+    sec. 11.2.2)."""
     settings = ReportSettings()
-    fig_dir = built["index"].parent / "figures"
-    for name in FIGURE_FILES.values():
-        data = (fig_dir / name).read_bytes()
-        assert data[:8] == PNG_SIGNATURE, name           # PNG spec sec. 5.2
-        assert len(data) > 8000, name                     # a drawn figure, not an empty canvas (regression only)
-        width, height = _png_size(data)
-        # pixel width = width in inches x dots per inch (matplotlib savefig; common practice, no source)
-        assert width == round(settings.figure_width_in * settings.dpi), name
-        assert height > 200, name
+    rendered = built["rendered"]
+    assert set(rendered.figures) == set(FIGURE_FILES)
+    for key, fig in rendered.figures.items():
+        data = rendered.figure_paths[key].read_bytes()
+        assert data[:8] == PNG_SIGNATURE, key           # PNG spec sec. 5.2
+        width_in, height_in = fig.get_size_inches()
+        assert width_in == settings.figure_width_in, key
+        width_px, height_px = _png_size(data)
+        assert abs(width_px - width_in * settings.dpi) < 1 and abs(height_px - height_in * settings.dpi) < 1, key
+
+
+# -- what each figure draws, read from its matplotlib objects -------------------------------------------------
+# Times are drawn as decimal years; the reference is astropy's ``Time.decimalyear`` (a reference library),
+# to 1e-6 yr (30 s; astropy counts leap seconds in UTC, the pipeline does not: <= 1 s a year).
+
+def _astropy_years(times) -> np.ndarray:
+    from astropy.time import Time
+
+    return np.atleast_1d(Time(np.asarray(times, dtype="datetime64[ns]").astype(str), scale="utc").decimalyear)
+
+
+def _line(ax, label):
+    found = [ln for ln in ax.get_lines() if ln.get_label() == label]
+    assert len(found) == 1, (label, [ln.get_label() for ln in ax.get_lines()])
+    return found[0]
+
+
+def _errorbar(ax, label):
+    found = [c for c in ax.containers if c.get_label() == label]
+    assert len(found) == 1, (label, [c.get_label() for c in ax.containers])
+    return found[0].lines[0]
+
+
+def _gid_lines(ax, prefix):
+    return [ln for ln in ax.get_lines() if (ln.get_gid() or "").startswith(prefix)]
+
+
+def _span_x(patch):
+    """x extent (data units) of an axvspan patch: Polygon (matplotlib < 3.9) or Rectangle (>= 3.9)."""
+    xy = patch.get_patch_transform().transform(patch.get_path().vertices)
+    return float(xy[:, 0].min()), float(xy[:, 0].max())
+
+
+def _assert_units(label, unit):
+    assert label.endswith(f"({unit})"), (label, unit)
+
+
+def test_series_figure_draws_every_rotation_the_smoothed_curves_and_the_reversal_epochs(built):
+    """Per-rotation points with their errors and the smoothed curves are the series' values at the rotation
+    times; a vertical line marks every crossing of reversals.json (the final one heavier, with its shaded
+    interval); the cycle minimum and maximum of cycles.json are marked (products of tests/_report_store.py)."""
+    import xarray as xr
+
+    fig = built["rendered"].figures["series"]
+    top, bottom = fig.axes
+    _assert_units(top.get_ylabel(), "G")
+    _assert_units(bottom.get_ylabel(), "G")
+    assert bottom.get_xlabel() == "time (decimal year, UTC)"
+    with xr.open_dataset(built["products"] / "series.nc") as ds:
+        series = ds.load()
+    t = _astropy_years(series["rotation_time"].values)
+    for ax, poles in ((top, ("north", "south")), (bottom, ("dipole",))):
+        for pole in poles:
+            y = series[f"{pole}_br_rotation_gauss"].values
+            ok = np.isfinite(y)
+            points = _errorbar(ax, f"{pole} (per rotation)")
+            np.testing.assert_allclose(points.get_xdata(), t[ok], atol=1e-6)
+            np.testing.assert_array_equal(points.get_ydata(), y[ok])
+            smooth = _line(ax, f"{pole} (smoothed)")
+            np.testing.assert_allclose(smooth.get_xdata(), t, atol=1e-6)
+            np.testing.assert_array_equal(smooth.get_ydata(), series[f"{pole}_br_smooth_gauss"].values)
+        lo, hi = ax.get_xlim()
+        assert lo < t.min() and hi > t.max()  # every rotation inside the drawn range
+    reversals = json.loads((built["products"] / "reversals.json").read_text())
+    for ax, pole in ((top, "north"), (top, "south"), (bottom, "dipole")):
+        crossings = reversals[pole]["crossings"]
+        markers = _gid_lines(ax, f"reversal:{pole}")
+        assert sorted(ln.get_xdata()[0] for ln in markers) == sorted(c["time"] for c in crossings)
+        final = [ln for ln in markers if ln.get_gid() == f"reversal:{pole}:final"]
+        assert len(final) == 1 and final[0].get_xdata()[0] == reversals[pole]["final"]["time"]
+        assert final[0].get_linewidth() > max([0.0] + [ln.get_linewidth() for ln in markers if ln is not final[0]])
+        spans = sorted(_span_x(p) for p in ax.patches if p.get_gid() == f"reversal-interval:{pole}")
+        want = sorted((c["low"], c["high"]) for c in crossings if c["high"] > c["low"])
+        assert len(spans) == len(want) >= 1
+        np.testing.assert_allclose(np.array(spans), np.array(want), rtol=0, atol=1e-9)
+    # the constructed field reverses at NORTH_REVERSAL_YR and SOUTH_REVERSAL_YR (tests/_report_store.py)
+    north_final = [ln.get_xdata()[0] for ln in _gid_lines(top, "reversal:north:final")]
+    assert north_final[0] == pytest.approx(NORTH_REVERSAL_YR, abs=0.1)
+    cycles = json.loads((built["products"] / "cycles.json").read_text())["cycles"][0]
+    for ax in (top, bottom):
+        assert [ln.get_xdata()[0] for ln in _gid_lines(ax, "cycle:minimum")] == [cycles["minimum_time"]]
+        assert [ln.get_xdata()[0] for ln in _gid_lines(ax, "cycle:maximum")] == [cycles["maximum_time"]]
+
+
+def test_latitude_time_figure_maps_every_bin_and_marks_the_cap_of_the_settings_in_force(built):
+    """The colour mesh holds the diagram's values bin for bin, on its latitude edges and on rotation-time
+    edges half a step beyond the first and last rotation; dashed lines at +-cap latitude of the measure
+    settings in force (the products' config.json: 60 deg)."""
+    import xarray as xr
+
+    fig = built["rendered"].figures["latitude_time"]
+    ax, bar = fig.axes
+    _assert_units(ax.get_ylabel(), "deg")
+    assert ax.get_xlabel() == "time (decimal year, UTC)"
+    _assert_units(bar.get_ylabel(), "G")
+    with xr.open_dataarray(built["products"] / "latitude_time.nc") as da:
+        diagram = da.load()
+    assert diagram.dims == ("latitude", "rotation")
+    (mesh,) = ax.collections
+    np.testing.assert_array_equal(np.ma.filled(mesh.get_array(), np.nan), diagram.values)
+    coords = mesh.get_coordinates()
+    lat_edges = np.concatenate([diagram["latitude_lower"].values, diagram["latitude_upper"].values[-1:]])
+    np.testing.assert_array_equal(coords[:, 0, 1], lat_edges)
+    t = _astropy_years(diagram["rotation_time"].values)
+    x_edges = coords[0, :, 0]
+    assert x_edges.size == t.size + 1 and np.all((x_edges[:-1] < t) & (t < x_edges[1:]))
+    np.testing.assert_allclose(0.5 * (x_edges[:-1] + x_edges[1:])[1:-1], t[1:-1], atol=0.05)
+    assert built["rendered"].measure == MeasureSettings()
+    cap = [ln.get_ydata()[0] for ln in _gid_lines(ax, "cap-boundary")]
+    assert sorted(cap) == [-MeasureSettings().cap_latitude_deg, MeasureSettings().cap_latitude_deg]
+
+
+def test_calibration_figure_line_and_bands_match_statsmodels_ols(built):
+    """Points at the table's cycles; the fitted line and the 68 % and 95 % prediction bands equal statsmodels'
+    OLS fit and ``get_prediction(...).summary_frame`` obs_ci (a reference library); the forecast marker sits
+    at forecast.json's precursor and amplitude."""
+    import statsmodels.api as sm
+
+    fig = built["rendered"].figures["calibration"]
+    (ax,) = fig.axes
+    _assert_units(ax.get_xlabel(), "G")
+    assert "sunspot number" in ax.get_ylabel()
+    table = built["rendered"].products.calibration
+    points = _errorbar(ax, "calibration cycles")
+    np.testing.assert_array_equal(points.get_xdata(), table.precursor)
+    np.testing.assert_array_equal(points.get_ydata(), table.amplitude)
+    line = _line(ax, "fitted line (ols)")
+    grid = np.asarray(line.get_xdata())
+    ols = sm.OLS(np.asarray(table.amplitude, float), sm.add_constant(np.asarray(table.precursor, float))).fit()
+    np.testing.assert_allclose(line.get_ydata(), ols.params[0] + ols.params[1] * grid, rtol=1e-9)
+    for label, level in (("95% prediction band", 0.95), ("68% prediction band", 0.6826894921370859)):
+        (band,) = [c for c in ax.collections if c.get_label() == label]
+        verts = band.get_paths()[0].vertices
+        frame = ols.get_prediction(sm.add_constant(grid)).summary_frame(alpha=1.0 - level)
+        for x, lo, hi in zip(grid[::17], frame["obs_ci_lower"].values[::17], frame["obs_ci_upper"].values[::17]):
+            ys = verts[np.isclose(verts[:, 0], x, rtol=0, atol=1e-12), 1]
+            assert (ys.min(), ys.max()) == pytest.approx((lo, hi), rel=1e-9), label
+    fc = json.loads((built["products"] / "forecast.json").read_text())
+    (marker,) = [c for c in ax.containers if c.get_label().startswith("forecast ")]
+    assert (marker.lines[0].get_xdata()[0], marker.lines[0].get_ydata()[0]) == (fc["precursor"], fc["amplitude"])
+
+
+def test_history_figure_puts_each_update_at_its_data_date(built):
+    """One point per history entry at its data date (astropy decimalyear) and amplitude."""
+    fig = built["rendered"].figures["history"]
+    (ax,) = fig.axes
+    assert "sunspot number" in ax.get_ylabel() and "decimal year" in ax.get_xlabel()
+    entries = built["rendered"].products.history
+    line = _line(ax, "forecast amplitude")
+    dates = np.array([e["data_date"] for e in entries], dtype="datetime64[D]")
+    np.testing.assert_allclose(line.get_xdata(), _astropy_years(dates), atol=1e-6)
+    np.testing.assert_array_equal(line.get_ydata(), [e["amplitude"] for e in entries])
+    assert ax.get_title() == "Forecast history (3 updates)"
+
+
+def test_diagnostics_figure_draws_b0_coverage_and_the_skipped_files(built):
+    """B0 and cap coverage of every frame; one bar per skip reason whose lengths add up to the two bad files
+    of the archive (an empty file and a text file, tests/_report_store.py)."""
+    fig = built["rendered"].figures["diagnostics"]
+    ax_b0, ax_cov, ax_skip = fig.axes
+    _assert_units(ax_b0.get_ylabel(), "deg")
+    _assert_units(ax_cov.get_ylabel(), "fraction")
+    series = built["rendered"].products.series
+    (b0,) = [ln for ln in ax_b0.get_lines() if ln.get_marker() == "."]
+    np.testing.assert_allclose(b0.get_xdata(), _astropy_years(series["time"].values), atol=1e-6)
+    np.testing.assert_array_equal(b0.get_ydata(), series["b0_deg"].values)
+    assert b0.get_xdata().size == N_FRAMES
+    for pole in ("north", "south"):
+        np.testing.assert_array_equal(_line(ax_cov, f"{pole} cap").get_ydata(), series[f"{pole}_coverage"].values)
+    widths = [p.get_width() for p in ax_skip.patches]
+    assert sum(widths) == 2 and len(widths) == len(ax_skip.get_yticklabels())
 
 
 def test_page_is_self_contained_and_embeds_every_figure(built):
@@ -93,7 +273,7 @@ def test_page_is_self_contained_and_embeds_every_figure(built):
     tags = [t for t, _ in page.tags]
     assert "script" not in tags and "link" not in tags and "iframe" not in tags
     metas = [a for t, a in page.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
-    assert metas and "script-src 'none'" in metas[0]["content"] and "img-src data:" in metas[0]["content"]
+    assert len(metas) == 1 and "script-src 'none'" in metas[0]["content"] and "img-src data:" in metas[0]["content"]
     imgs = [a["src"] for t, a in page.tags if t == "img"]
     assert len(imgs) == len(FIGURE_FILES)
     prefix = "data:image/png;base64,"                    # RFC 2397 data URI
@@ -148,7 +328,7 @@ def test_bare_store_recomputes_series_and_reversals(built, bare):
     fig_dir = bare.parent / "figures"
     assert {p.name for p in fig_dir.iterdir()} == {FIGURE_FILES[k] for k in ("series", "latitude_time", "diagnostics")}
     text = " ".join(_parse(bare).text)
-    assert "recomputed from the store" in text
+    assert "recomputed from the store (series, latitude-time diagram, reversals) with the default settings" in text
     assert "calibration figure left out" in text and "no forecast history" in text
     # the constructed field changes sign at NORTH_REVERSAL_YR / SOUTH_REVERSAL_YR (tests/_report_store.py);
     # the recomputed final epochs are in the page's reversal table
@@ -169,21 +349,101 @@ def test_bad_and_missing_products_are_left_out_with_a_note(built, tmp_path):
     (products / "cycles.json").write_text("{ not json")
     (products / "forecast_history.jsonl").unlink()
     (products / "calibration.csv").write_text("cycle,amplitude\n1,2\n")
+    (products / "series.nc").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 64)  # a torn netCDF-4 file
     loaded = load_products(products)
-    assert loaded.cycles is None and loaded.history is None and loaded.calibration is None
-    index = build_report(built["store"], tmp_path / "out", products)
-    text = " ".join(_parse(index).text)
-    assert "cycles.json: unreadable" in text and "forecast_history.jsonl: not in the products directory" in text
-    assert "calibration.csv: unreadable" in text
-    names = {p.name for p in (index.parent / "figures").iterdir()}
+    assert loaded.cycles is None and loaded.history is None and loaded.calibration is None and loaded.series is None
+    rendered = render_report(built["store"], tmp_path / "out", products)
+    text = " ".join(_parse(rendered.index).text)
+    assert "cycles.json: unreadable (JSONDecodeError" in text
+    assert "forecast_history.jsonl: not in the products directory" in text
+    assert "calibration.csv: unreadable (ValueError" in text and "series.nc: unreadable (OSError" in text
+    assert "recomputed from the store (series) with the settings of the products' config.json" in text
+    assert rendered.products.series.sizes["time"] == N_FRAMES   # recomputed from the store's 28 frames
+    names = {p.name for p in (rendered.index.parent / "figures").iterdir()}
     assert FIGURE_FILES["calibration"] not in names and FIGURE_FILES["history"] not in names
+    assert set(rendered.figures) == {"series", "latitude_time", "diagnostics"}
+
+
+def test_a_reader_bug_is_not_turned_into_an_unreadable_product(built, tmp_path, monkeypatch):
+    """Only the errors of a bad file (OSError, ValueError, KeyError) leave a product out; any other exception
+    is a bug and propagates, naming the product it was reading."""
+    def broken(path):
+        raise ZeroDivisionError("a bug in the reader")
+
+    monkeypatch.setattr("pipeline.regression.read_calibration_csv", broken)
+    with pytest.raises(ZeroDivisionError, match="a bug in the reader") as info:
+        load_products(built["products"])
+    assert info.value.__notes__ == [f"while reading the product {built['products'] / 'calibration.csv'}"]
+
+
+@pytest.mark.parametrize("content, match", [
+    ("{ not json", r"config.json: unreadable \(Expecting property name"),
+    ("[1, 2]", r"config.json: got a JSON list; expected the object of Config.to_dict\(\)"),
+    (json.dumps({"series": {"b0_method": "guess"}}), r"config.json \[series\]: series.b0_method: got 'guess'"),
+    (json.dumps({"measure": {"cap_latitude_deg": "sixty"}}), r"config.json \[measure\]: measure.cap_latitude_deg"),
+    (json.dumps({"reversals": [1]}), r"config.json \[reversals\]: got a JSON list"),
+])
+def test_an_invalid_config_json_is_an_error_with_its_reason_not_the_defaults(built, tmp_path, capsys, content,
+                                                                             match):
+    """Issue 17: the products' settings are never replaced by the defaults; the report stops with the reason
+    (ConfigError in Python, one line and exit 2 from the command line)."""
+    products = tmp_path / "p"
+    shutil.copytree(built["products"], products)
+    (products / "config.json").write_text(content)
+    for name in ("series.nc", "latitude_time.nc", "reversals.json"):
+        (products / name).unlink()  # the report would recompute these with the settings
+    with pytest.raises(ConfigError, match=match):
+        build_report(built["store"], tmp_path / "out", products)
+    assert not (tmp_path / "out").exists()
+    assert main(["report", str(built["store"]), "--out", str(tmp_path / "cli"), "--products", str(products)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and re.search(match, err[0]) and "configuration error" in err[0]
+
+
+def test_the_store_is_read_under_the_settings_of_config_json_or_its_own(built, tmp_path, capsys):
+    """The measure settings in force: config.json's [measure] (records measured otherwise are refused in one
+    line, exit 2: pipeline.store.check_measure_settings); without config.json, the store's own."""
+    products = tmp_path / "p"
+    shutil.copytree(built["products"], products)
+    cfg = json.loads((products / "config.json").read_text())
+    cfg["measure"]["cap_latitude_deg"] = 70.0
+    (products / "config.json").write_text(json.dumps(cfg))
+    assert main(["report", str(built["store"]), "--out", str(tmp_path / "out"), "--products", str(products)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("polecast report: ") and "cap_latitude_deg" in err[0] and "70" in err[0]
+    (products / "config.json").unlink()
+    rendered = render_report(built["store"], tmp_path / "own", products)
+    assert rendered.measure == MeasureSettings()   # what tests/_report_store.py measured with
+    assert "config.json: not in the products directory" in rendered.products.notes
+
+
+def test_a_failed_figure_write_leaves_the_previous_report_whole(built, tmp_path, monkeypatch, capsys):
+    """Every report file goes through a temporary file and a rename: a save that fails half-way leaves the
+    previous PNG and page byte for byte and no temporary file (regression only)."""
+    from matplotlib.figure import Figure
+
+    out = tmp_path / "out"
+    shutil.copytree(built["index"].parent, out)
+    before = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
+
+    def torn(self, fname, **kwargs):
+        with open(fname, "wb") as fh:
+            fh.write(PNG_SIGNATURE)
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(Figure, "savefig", torn)
+    assert main(["report", str(built["store"]), "--out", str(out), "--products", str(built["products"])]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "cannot write the report" in err[0] and "No space left on device" in err[0]
+    after = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    assert after == before
 
 
 def test_cli_report_prints_the_page_and_exit_codes(built, tmp_path, capsys):
     out = tmp_path / "cli"
     assert main(["report", str(built["store"]), "--out", str(out), "--products", str(built["products"])]) == 0
     assert capsys.readouterr().out.strip() == f"report: {out / 'index.html'}"
-    assert (out / "index.html").is_file()
+    assert f"<title>{html.escape(ReportSettings().title)}</title>" in (out / "index.html").read_text()
     assert main(["report", str(tmp_path / "nope.polecast"), "--out", str(out)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "no such file" in err[0] and "polecast ingest" in err[0]

@@ -438,9 +438,9 @@ def render_report(store_path, out_dir, products_dir=None, settings: ReportSettin
         products.forecast = products.summary["forecast"]
         notes.append("forecast taken from summary.json")
     if recomputed:
-        origin = ("of the products' config.json" if made_with is not None and not given else
-                  "given" if given or config.source_path else "default")
-        notes.append(f"recomputed from the store ({', '.join(recomputed)}) with the {origin} settings")
+        origin = ("settings of the products' config.json" if made_with is not None and not given else
+                  "given settings" if given or config.source_path else "default settings")
+        notes.append(f"recomputed from the store ({', '.join(recomputed)}) with the {origin}")
     if products.calibration is not None and products.calibration.n_cycles < 3:
         notes.append(f"calibration.csv has {products.calibration.n_cycles} usable cycles: calibration figure "
                      f"left out")
