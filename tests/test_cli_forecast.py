@@ -27,12 +27,16 @@ def test_json_output_matches_statsmodels(tmp_path, capsys):
     assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5", "--format", "json"]) == 0
     doc = json.loads(capsys.readouterr().out)
     # reference library: statsmodels OLS prediction interval for a new observation
-    frame = sm.OLS(y, sm.add_constant(x)).fit().get_prediction(np.array([[1.0, 1.5]])).summary_frame(alpha=0.05)
+    fit = sm.OLS(y, sm.add_constant(x)).fit()
+    frame = fit.get_prediction(np.array([[1.0, 1.5]])).summary_frame(alpha=0.05)
     assert doc["amplitude"] == pytest.approx(frame["mean"][0], rel=1e-8)
     assert doc["interval_95"] == pytest.approx([frame["obs_ci_lower"][0], frame["obs_ci_upper"][0]], rel=1e-8)
     assert doc["method"] == "ols" and doc["n_cycles"] == 8 and doc["precursor"] == 1.5
     assert doc["r"] == pytest.approx(np.corrcoef(x, y)[0, 1], rel=1e-10)  # numpy reference
-    assert doc["loo_rmse"] > 0 and doc["warnings"] == [] and "Official space-weather" in doc["cautions"]
+    # leave-one-out residuals of OLS are the PRESS residuals e_i / (1 - h_ii) (Allen 1974); statsmodels' influence
+    press = fit.get_influence().resid_press
+    assert doc["loo_rmse"] == pytest.approx(np.sqrt(np.mean(press ** 2)), rel=1e-8)
+    assert doc["warnings"] == [] and "Official space-weather" in doc["cautions"]
 
 
 def test_text_output_prints_cautions_and_warning(tmp_path, capsys):
