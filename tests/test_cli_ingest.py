@@ -141,3 +141,25 @@ def test_export_uses_only_records_of_the_settings_in_force(tmp_path, capsys):
     record_store(store, MeasureSettings(), n=2, start=4)  # now two settings: refused without --config too
     rc, out, err = _run(capsys, "export", str(store))
     assert rc == 2 and out == "" and "several settings" in err and len(err.strip().splitlines()) == 1
+
+
+def test_errors_are_reported_apart_from_skips(archive, tmp_path, capsys, monkeypatch):
+    """The command's wiring (issue 17): an error is reported as "not stored", a skip as "skipped", and the exit
+    code is 1 (pipeline.cli docstring).  The driver is replaced by one that reports one of each."""
+    import pipeline.batch as batch
+
+    def fake_ingest(paths, store, measure, settings, *, on_skip, on_error, **kw):
+        s = batch.IngestSummary(new_ok=1, new_skipped=1, errors=1)
+        s.skip_reasons["empty file"] += 1
+        s.error_reasons["unexpected RuntimeError while measuring"] += 1
+        on_skip("/a/empty.fits", "empty file")
+        on_error("/a/f.fits", "unexpected RuntimeError while measuring: injected fault")
+        return s
+
+    monkeypatch.setattr(batch, "ingest", fake_ingest)
+    rc, out, err = _run(capsys, "ingest", str(archive), "--store", str(tmp_path / "s.polecast"))
+    assert rc == 1 and err.splitlines() == [
+        "polecast ingest: skipped /a/empty.fits: empty file",
+        "polecast ingest: not stored /a/f.fits: unexpected RuntimeError while measuring: injected fault"]
+    assert out.strip() == ("ingest: 2 new (1 ok, 1 skipped: 1 empty file), 0 already known, 1 error (1 unexpected "
+                           "RuntimeError while measuring; not stored, tried again next run)")
