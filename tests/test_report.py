@@ -205,6 +205,10 @@ def test_latitude_time_figure_maps_every_bin_and_marks_the_cap_of_the_settings_i
     assert built["rendered"].measure == MeasureSettings()
     cap = [ln.get_ydata()[0] for ln in _gid_lines(ax, "cap-boundary")]
     assert sorted(cap) == [-MeasureSettings().cap_latitude_deg, MeasureSettings().cap_latitude_deg]
+    from pipeline.report.figures import latitude_time_figure
+
+    other = latitude_time_figure(diagram, ReportSettings(), cap_latitude_deg=70.0)
+    assert sorted(ln.get_ydata()[0] for ln in _gid_lines(other.axes[0], "cap-boundary")) == [-70.0, 70.0]
 
 
 def test_calibration_figure_line_and_bands_match_statsmodels_ols(built):
