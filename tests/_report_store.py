@@ -79,7 +79,7 @@ def build_store(tmp_path):
 def write_products(products, store):
     """Products like `polecast run` writes: series, diagram, reversals, cycles, forecast, history, calibration."""
     from pipeline.aggregator import latitude_time_diagram, polar_series
-    from pipeline.cli.series import write_netcdf
+    from pipeline.ncio import write_netcdf
     from pipeline.config import load_config
     from pipeline.history import append_history, history_entry
     from pipeline.regression import forecast_amplitude, read_calibration_csv
