@@ -144,22 +144,51 @@ def pearson_r(x, y) -> float:
     return float(np.corrcoef(np.asarray(x, float), np.asarray(y, float))[0, 1])
 
 
+def _mu_at_angle(t_rad: float, rsun_m: float, distance_m: float) -> float:
+    """mu of the sphere point at angle ``t`` from the sub-observer point, from the 3-D vectors.
+
+    The point ``P = R (sin t, 0, cos t)``, its outward normal ``P / R`` and the
+    direction to the observer at ``O = (0, 0, D)``: ``mu = n . (O - P) / |O - P|``
+    (DESIGN.md's definition of mu, evaluated directly, no closed form).
+    """
+    p = rsun_m * np.array([np.sin(t_rad), 0.0, np.cos(t_rad)])
+    view = np.array([0.0, 0.0, distance_m]) - p
+    return float(np.dot(p / rsun_m, view) / np.linalg.norm(view))
+
+
 def mu_threshold_cos(rsun_m: float, distance_m: float, mu_min: float) -> float:
     """cos of the angle from the sub-observer point at which mu equals mu_min (finite distance).
 
+    Parameters
+    ----------
+    rsun_m, distance_m : float
+        Sphere radius and observer distance from its centre, metres (``distance_m > rsun_m``).
+    mu_min : float
+        The mu of the boundary; values <= 0 give the limb (mu = 0).
+
+    Returns
+    -------
+    float
+        ``cos t`` of the circle on the sphere where mu = mu_min.
+
     Notes
     -----
-    ``mu = (D cos t - R) / sqrt(D^2 + R^2 - 2 D R cos t)`` (DESIGN.md's mu for
-    an observer at distance D); squaring ``mu = m`` gives the quadratic
-    ``D^2 c^2 - 2 D R (1 - m^2) c + R^2 - m^2 (D^2 + R^2) = 0``, root with ``D c > R``.
+    Found by Brent's root finding (``scipy.optimize.brentq``; Brent 1973,
+    *Algorithms for Minimization without Derivatives*, ch. 4) on
+    ``mu(t) - mu_min`` over ``0 <= t <= pi/2``, with mu evaluated from the 3-D
+    vectors (:func:`_mu_at_angle`).  mu falls monotonically from 1 at the
+    sub-observer point to ``-R / sqrt(R^2 + D^2) < 0`` at ``t = pi/2``, so the
+    bracket always holds one root.  This route shares no formula with
+    :func:`pipeline.projection.visible_area_m2` (a closed-form quadratic), so
+    their agreement checks both.
     """
-    big_d, r, m = float(distance_m), float(rsun_m), float(mu_min)
-    if m <= 0.0:
-        return r / big_d
-    a = big_d ** 2
-    b = -2.0 * big_d * r * (1.0 - m * m)
-    c = r * r - m * m * (big_d ** 2 + r * r)
-    return float((-b + np.sqrt(b * b - 4 * a * c)) / (2 * a))
+    from scipy.optimize import brentq
+
+    big_d, r, m = float(distance_m), float(rsun_m), max(float(mu_min), 0.0)
+    if not big_d > r > 0.0:
+        raise ValueError(f"distance_m: got {distance_m!r} with rsun_m {rsun_m!r}; need distance_m > rsun_m > 0")
+    t = brentq(lambda x: _mu_at_angle(x, r, big_d) - m, 0.0, np.pi / 2, xtol=1e-15, rtol=4 * np.finfo(float).eps)
+    return float(np.cos(t))
 
 
 def visible_longitude_fraction(latitude_deg, b0_deg: float, cos_threshold: float) -> np.ndarray:

@@ -12,11 +12,29 @@ AU_M = 1.495978707e11  # IAU 2012 Resolution B2
 RSUN_M = 6.957e8       # IAU 2015 Resolution B3
 
 
-@pytest.mark.parametrize("mu_min", [0.0, 0.1, 0.3])
-def test_mu_threshold_agrees_with_visible_area(mu_min):
-    # spherical cap 2 pi R^2 (1 - cos t_m) must equal pipeline.projection.visible_area_m2 (an independent code)
-    c = mu_threshold_cos(RSUN_M, AU_M, mu_min)
-    assert 2 * np.pi * RSUN_M ** 2 * (1 - c) == pytest.approx(visible_area_m2(RSUN_M, AU_M, mu_min), rel=1e-12)
+@pytest.mark.parametrize("distance_rsun", [AU_M / RSUN_M, 10.0, 1.5])
+@pytest.mark.parametrize("mu_min", [0.0, 0.05, 0.1, 0.3, 0.6, 0.95])
+def test_mu_threshold_root_agrees_with_projection_quadratic(mu_min, distance_rsun):
+    """Two routes: truth.mu_threshold_cos finds the root of mu(t) = mu_min on the 3-D vectors
+    (scipy.optimize.brentq), pipeline.projection.visible_area_m2 solves the closed-form quadratic;
+    its spherical cap 2 pi R^2 (1 - cos t) gives cos t.  Both are exact, so they agree to 1e-10
+    (double rounding, about 1e-16, measured)."""
+    distance_m = distance_rsun * RSUN_M
+    c_root = mu_threshold_cos(RSUN_M, distance_m, mu_min)
+    c_quadratic = 1.0 - visible_area_m2(RSUN_M, distance_m, mu_min) / (2.0 * np.pi * RSUN_M ** 2)
+    assert c_root == pytest.approx(c_quadratic, abs=1e-10)
+
+
+def test_mu_threshold_limits():
+    """Analytic limits: mu = 0 is the tangent circle seen from D, cos t = R / D (a tangent line from an
+    external point, elementary geometry); D -> infinity is the orthographic mu = cos t, so cos t -> mu_min
+    with an error of order R / D (here 1e-9)."""
+    assert mu_threshold_cos(1.0, 4.0, 0.0) == pytest.approx(0.25, abs=1e-12)
+    assert mu_threshold_cos(RSUN_M, AU_M, 0.0) == pytest.approx(RSUN_M / AU_M, abs=1e-12)
+    for m in (0.1, 0.5, 0.9):
+        assert mu_threshold_cos(1.0, 1e9, m) == pytest.approx(m, abs=1e-8)
+    with pytest.raises(ValueError, match="distance_m: got 0.5"):
+        mu_threshold_cos(1.0, 0.5, 0.1)
 
 
 def test_visible_fraction_limits():
