@@ -38,12 +38,8 @@ records measured otherwise is refused with a one-line
 from __future__ import annotations
 
 import dataclasses
-import datetime as _dt
-import fcntl
 import json
-import os
 import shutil
-import socket
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -193,26 +189,19 @@ def run_lock(products_dir):
     leaves the directory locked.  The lock file itself is kept (removing it
     would let two runs lock two different files of the same name).
     """
+    from pipeline.locking import LockHeldError, release_lock, take_lock
+
     path = Path(products_dir) / RUN_LOCK_NAME
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        try:
-            holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "another process"
-        except OSError:
-            holder = "another process"
-        os.close(fd)
+        fd = take_lock(path)
+    except LockHeldError as exc:
         raise RunLockedError(
-            f"products directory {products_dir} is in use by another `polecast run` ({holder}); wait for it "
-            f"to finish or stop it, then run again (a dead process releases the lock by itself)") from None
+            f"products directory {products_dir} is in use by another `polecast run` ({exc.holder}); wait for "
+            f"it to finish or stop it, then run again (a dead process releases the lock by itself)") from None
     try:
-        since = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        os.ftruncate(fd, 0)
-        os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {since}".encode(), 0)
         yield path
     finally:
-        os.close(fd)  # releases the lock
+        release_lock(fd)
 
 
 def _copy_file(src: Path, dst: Path) -> None:

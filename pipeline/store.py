@@ -48,12 +48,10 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as _dt
-import fcntl
 import hashlib
 import json
 import math
 import os
-import socket
 import sqlite3
 from collections import Counter
 from dataclasses import dataclass
@@ -63,6 +61,7 @@ from typing import Iterable, Iterator
 import numpy as np
 
 from pipeline import __version__
+from pipeline.locking import release_lock
 from pipeline.config import ConfigError, MeasureSettings, settings_from_mapping
 from pipeline.measure import JSON_KEYS, MEASUREMENT_VERSION, FrameRecord
 
@@ -264,11 +263,8 @@ class Store:
                 self._conn.close()
                 self._conn = None
         if self._lock_fd is not None:
-            try:
-                fcntl.flock(self._lock_fd, fcntl.LOCK_UN)
-            finally:
-                os.close(self._lock_fd)
-                self._lock_fd = None
+            fd, self._lock_fd = self._lock_fd, None
+            release_lock(fd)
 
     def _need_write(self):
         if self.mode != "a":
@@ -641,22 +637,14 @@ def check_measure_settings(store: Store, measure: MeasureSettings | None) -> Mea
 
 
 def _take_lock(path: Path) -> int:
-    lock_path = path.with_name(path.name + ".lock")
-    fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
+    from pipeline.locking import LockHeldError, take_lock
+
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        try:
-            holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "another process"
-        except OSError:
-            holder = "another process"
-        os.close(fd)
+        return take_lock(path.with_name(path.name + ".lock"))
+    except LockHeldError as exc:
         raise StoreLockedError(
-            f"store {path} is in use by another ingest ({holder}); wait for it to finish or stop it, "
+            f"store {path} is in use by another ingest ({exc.holder}); wait for it to finish or stop it, "
             f"then run again (a dead process releases the lock by itself)") from None
-    os.ftruncate(fd, 0)
-    os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_utc_now()}".encode(), 0)
-    return fd
 
 
 def _upgrade(conn: sqlite3.Connection, version: int) -> None:
