@@ -59,7 +59,12 @@ class Observer:
     rsun_m : float
         Radius of the sphere the data are projected onto (RSUN_REF), metres.
     source : str
-        ``"header"`` or ``"ephemeris"`` (Earth's position for the time).
+        Where the observer came from: ``"header"`` (the file's observer
+        keywords), ``"ephemeris"`` (none present: the Earth's position for
+        the time), ``"header+ephemeris"`` (some keywords present, the
+        missing coordinates from the Earth's ephemeris; the record's notes
+        name which) or ``"instrument default"`` (sunpy's rule for that
+        instrument's map source).
     """
 
     distance_m: float

@@ -763,7 +763,7 @@ _VAR_ATTRS = {
     "measurement_version": ("1", "version of the measurement code (-1: unknown)"),
 }
 _TEXT_VARS = {
-    "file": "file path", "observer_source": "where the observer geometry came from (header or ephemeris)",
+    "file": "file path", "observer_source": "where the observer geometry came from (header, ephemeris, header+ephemeris or instrument default)",
     "instrument": "instrument as named by the file", "notes": "provenance remarks",
     "digest": f"{DIGEST_NAME} digest of the file's bytes (hex)", "polecast_version": "polecast version",
     "config_id": "id of the measure configuration", "measured_utc": "when the file was measured (UTC)",
