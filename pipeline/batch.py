@@ -105,6 +105,11 @@ class IngestSettings:
         return self.workers or (os.cpu_count() or 1)
 
 
+
+def _by_count(counts: Counter) -> list:
+    """``(reason, n)`` most frequent first, ties in alphabetical order (stable whatever the completion order)."""
+    return sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+
 @dataclass
 class IngestSummary:
     """What one ingest did.
@@ -175,15 +180,15 @@ class IngestSummary:
         """
         inner = f"{self.new_ok} ok, {self.new_skipped} skipped"
         if self.new_skipped:
-            inner += ": " + ", ".join(f"{n} {r}" for r, n in self.skip_reasons.most_common())
+            inner += ": " + ", ".join(f"{n} {r}" for r, n in _by_count(self.skip_reasons))
         text = f"ingest: {self.new} new ({inner}), {self.known} already known"
         if self.remeasured:
             text += f", {self.remeasured} re-measured under the settings in force"
         if self.unreadable:
-            why = ", ".join(f"{n} {r}" for r, n in self.unreadable_reasons.most_common())
+            why = ", ".join(f"{n} {r}" for r, n in _by_count(self.unreadable_reasons))
             text += f", {self.unreadable} not stored ({why}; tried again next run)"
         if self.errors:
-            why = ", ".join(f"{n} {r}" for r, n in self.error_reasons.most_common())
+            why = ", ".join(f"{n} {r}" for r, n in _by_count(self.error_reasons))
             text += f", {self.errors} error{'s' if self.errors != 1 else ''} ({why}; not stored, tried again next run)"
         if self.stale_config:
             text += f", {self.stale_config} records of other settings not found under the given paths"
