@@ -177,3 +177,17 @@ def faulty_settings(faults: dict, base: MeasureSettings | None = None) -> Faulty
     obj = FaultySettings(**dataclasses.asdict(base or MeasureSettings()))
     object.__setattr__(obj, "_faults", dict(faults))
     return obj
+
+
+def committed_rows(store) -> int:
+    """Rows of the store's ``files`` table as another process sees them now (0 while it cannot be read)."""
+    import sqlite3
+
+    try:
+        con = sqlite3.connect(f"file:{store}?mode=ro", uri=True, timeout=1)
+        try:
+            return con.execute("SELECT COUNT(*) FROM files").fetchone()[0]
+        finally:
+            con.close()
+    except sqlite3.Error:
+        return 0

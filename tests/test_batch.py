@@ -18,7 +18,8 @@ from pipeline.batch import (CHANGED_WHILE_READ, DEFAULT_PATTERNS, IngestError, I
 from pipeline.config import ConfigError, MeasureSettings
 from pipeline.measure import JSON_KEYS, MEASUREMENT_VERSION, measure_file
 from pipeline.store import file_digest, open_store
-from tests._ingest_archive import HOSTILE_REASONS, faulty_settings, good_archive, hostile_files, write_good
+from tests._ingest_archive import (HOSTILE_REASONS, committed_rows, faulty_settings, good_archive, hostile_files,
+                                   write_good)
 
 TWO = IngestSettings(workers=2, measure_chunk_files=2, hash_chunk_files=8)
 
@@ -398,17 +399,6 @@ def test_local_and_distributed_runs_agree(archive, tmp_path):
 
 # --- kill and resume ------------------------------------------------------------------------------
 
-def _count(store) -> int:
-    try:
-        con = sqlite3.connect(f"file:{store}?mode=ro", uri=True, timeout=1)
-        try:
-            return con.execute("SELECT COUNT(*) FROM files").fetchone()[0]
-        finally:
-            con.close()
-    except sqlite3.Error:
-        return 0
-
-
 def test_sigkill_then_resume_equals_uninterrupted(tmp_path):
     """SIGKILL the whole ingest (driver and workers) after some commits; a re-run ends with exactly the rows
     of an uninterrupted ingest: no loss, no duplicates (SQLite transactions are atomic: sqlite.org/atomiccommit)."""
@@ -423,12 +413,12 @@ def test_sigkill_then_resume_equals_uninterrupted(tmp_path):
                             start_new_session=True)
     try:
         deadline = time.monotonic() + 120
-        while _count(killed) < 6 and proc.poll() is None and time.monotonic() < deadline:
+        while committed_rows(killed) < 6 and proc.poll() is None and time.monotonic() < deadline:
             time.sleep(0.01)
         os.killpg(proc.pid, signal.SIGKILL)
     finally:
         proc.wait(timeout=30)
-    at_kill = _count(killed)
+    at_kill = committed_rows(killed)
     assert 6 <= at_kill < 55, f"the kill came too late ({at_kill} rows): the test did not interrupt anything"
     resumed = _ingest([arch], killed)
     assert resumed.known == at_kill and resumed.new == 55 - at_kill

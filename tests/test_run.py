@@ -22,7 +22,6 @@ import json
 import math
 import os
 import signal
-import sqlite3
 import subprocess
 import sys
 import threading
@@ -40,6 +39,7 @@ from pipeline.run import RUN_LOCK_NAME, RunLockedError, run_lock, run_pipeline
 from pipeline.store import MeasuredFile, check_measure_settings, file_digest, open_store
 from tests._demo_store import (DEMO, DEMO_CONFIG, REPO, demo_files, demo_measure, link_archive, seed_store,
                                write_run_config)
+from tests._ingest_archive import committed_rows
 
 FIGURES = ("polar_series.png", "latitude_time.png", "calibration.png", "forecast_history.png", "diagnostics.png")
 PRODUCTS = ("series.nc", "latitude_time.nc", "reversals.json", "cycles.json", "forecast.json",
@@ -393,17 +393,6 @@ def test_a_crash_while_writing_a_product_leaves_the_old_product(tmp_path, demo_r
     assert after == before
 
 
-def _count_rows(store: Path) -> int:
-    try:
-        con = sqlite3.connect(f"file:{store}?mode=ro", uri=True, timeout=1)
-        try:
-            return con.execute("SELECT COUNT(*) FROM files").fetchone()[0]
-        finally:
-            con.close()
-    except sqlite3.Error:
-        return 0
-
-
 def test_sigint_mid_ingest_exits_130_in_one_line_and_keeps_committed_work(tmp_path):
     """Ctrl-C (SIGINT to the whole process group, as a terminal sends it) while `polecast run` measures:
     exit 130, one line on stderr, no traceback; the records committed before it are in the store, the store
@@ -418,9 +407,9 @@ def test_sigint_mid_ingest_exits_130_in_one_line_and_keeps_committed_work(tmp_pa
                             stderr=subprocess.PIPE, text=True, cwd=REPO, start_new_session=True)
     try:
         deadline = time.monotonic() + 180
-        while _count_rows(store) < 4 and proc.poll() is None and time.monotonic() < deadline:
+        while committed_rows(store) < 4 and proc.poll() is None and time.monotonic() < deadline:
             time.sleep(0.02)
-        at_signal = _count_rows(store)
+        at_signal = committed_rows(store)
         os.killpg(proc.pid, signal.SIGINT)
         stdout, stderr = proc.communicate(timeout=120)
     finally:
