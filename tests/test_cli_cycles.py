@@ -9,7 +9,6 @@ the data centre's semicolon monthly layout (from memory); the exit-code contract
 import io
 import json
 
-import numpy as np
 import pytest
 
 from pipeline.cli import main
