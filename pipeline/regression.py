@@ -251,6 +251,15 @@ class ForecastSettings:
     through_origin : bool
         Fit amplitude = slope x precursor, without an intercept (methods in
         :data:`ORIGIN_METHODS`: ``ols`` and ``odr``).
+    phase : str
+        ``auto`` (the minimum once known, else ``reversal+L`` with the largest
+        complete lag; :func:`pipeline.precursor.choose_phase`), ``minimum`` or
+        ``reversal+L``: where a measured precursor is taken.
+    lags_years : tuple of float
+        The lags L that ``auto`` may take (years after the final reversal).
+    as_of : str, float or None
+        Forecast with only what was known before this date (ISO date or
+        decimal year; :mod:`pipeline.asof`); None uses all the data.
     """
 
     method: str = "ols"
@@ -259,9 +268,18 @@ class ForecastSettings:
     window_years: float = 0.5
     lag_years: float | None = None
     through_origin: bool = False
+    phase: str = "auto"
+    lags_years: tuple = (2.0, 3.0, 4.0, 5.0, 6.0)
+    as_of: str | float | None = None
 
     def __post_init__(self):
-        from pipeline.precursor import PRECURSOR_KINDS
+        from pipeline.asof import check_as_of
+        from pipeline.precursor import PRECURSOR_KINDS, check_lags_years, check_phase_request
+
+        # frozen: the phase, lags and date are stored in their canonical form
+        object.__setattr__(self, "phase", check_phase_request("forecast.phase", self.phase))
+        object.__setattr__(self, "lags_years", check_lags_years("forecast.lags_years", self.lags_years))
+        object.__setattr__(self, "as_of", check_as_of("forecast.as_of", self.as_of))
 
         check_choice("forecast.method", self.method, METHODS)
         check_number("forecast.min_cycles", self.min_cycles, lo=4, integer=True)

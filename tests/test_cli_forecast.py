@@ -61,8 +61,9 @@ def test_other_methods(tmp_path, capsys, method):
 def test_exit_codes(tmp_path, capsys):
     small = tmp_path / "small.csv"
     _write_table(small, n=3)
-    assert main(["forecast", "--calibration", str(small), "--precursor", "1.0"]) == 2
-    assert "got 3 cycles; at least 4 are needed" in capsys.readouterr().err
+    # issue 10: too few calibration rows of the phase is "no forecast", exit 3 (not a usage error)
+    assert main(["forecast", "--calibration", str(small), "--precursor", "1.0"]) == 3
+    assert "no forecast: calibration table: got 3 cycles; at least 4 are needed" in capsys.readouterr().err
     cal = tmp_path / "cal.csv"
     _write_table(cal)
     assert main(["forecast", "--calibration", str(cal), "--precursor", "1.0", "--method", "lasso"]) == 2
@@ -148,36 +149,59 @@ def test_store_route_at_the_minimum(tmp_path, capsys):
                  "--config", str(config), "--history", str(hist)]) == 0
     doc = json.loads(capsys.readouterr().out)
     detail = doc["precursor_detail"]
-    assert detail["route"] == "minimum" and detail["minimum_time"] == pytest.approx(2038.5, abs=0.1)
+    assert detail["route"] == "minimum" and doc["phase"] == "minimum" and doc["lag_years"] is None
+    assert doc["minimum_time"] == pytest.approx(2038.5, abs=0.1) and doc["minimum_status"] == "confirmed"
     # the dipole peaks (6 G) at the minimum: mean |B| over +-0.5 yr of 6 sin(...) is 5.99 G (closed form)
     assert doc["precursor"] == pytest.approx(5.99, abs=0.05)
     # the final reversal of the dipole, 2033.0 by construction (interpolated zero crossing)
-    assert detail["reversal_time"] == pytest.approx(2033.0, abs=0.1)
+    assert doc["reversal_time"] == pytest.approx(2033.0, abs=0.1)
+    # the second minimum of the sunspot file (2027.5, 2038.5) begins cycle 2 of its numbering
+    assert doc["target_cycle"] == 2 and doc["as_of"] is None and doc["data_date"].startswith("2041-")
     assert json.loads(hist.read_text())["precursor_source"] == "store"
     assert json.loads(hist.read_text())["data_date"].startswith("2041-")
 
 
+def _phase_table(path, phases, n=8, seed=5):
+    """A calibration table whose rows carry the given phases in turn (seeded, invented)."""
+    x, y = _write_table(path, n=n, seed=seed)
+    lines = path.read_text().splitlines()
+    rows = [f"{line},{phases[i % len(phases)]}" for i, line in enumerate(lines[1:])]
+    path.write_text(lines[0] + ",phase\n" + "\n".join(rows) + "\n")
+    return x, y
+
+
 def test_store_route_after_the_reversal(tmp_path, capsys):
-    store, config = _store_with_dipole(tmp_path, 2036.5)
+    # frames to 2036.26: the reversal (2033.0 by construction) + 2 + 0.5 yr is complete, + 3 + 0.5 is not
+    store, config = _store_with_dipole(tmp_path, 2036.3)
     ssn = tmp_path / "ssn.csv"
     _sunspots(ssn, 2036.5)
     cal = tmp_path / "cal.csv"
-    _write_table(cal)
+    _phase_table(cal, ["reversal+2", "reversal+3"], n=16)
     assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
                  "--config", str(config)]) == 0
     cap = capsys.readouterr()
     doc = json.loads(cap.out)
     detail = doc["precursor_detail"]
-    assert detail["route"] == "after_reversal" and detail["minimum_time"] == pytest.approx(2027.5, abs=0.1)
-    # newest window ends at the newest rotation; lag about 3 yr < 4 yr: Kumar et al. (2021) caution
-    assert detail["lag_years"] == pytest.approx(3.0, abs=0.1)
+    # phase auto: the minimum of 2027.5 precedes the reversal and the lowest smoothed value since the 2033
+    # maximum is only a pending candidate, so the largest complete lag is taken
+    assert detail["route"] == "after_reversal" and doc["phase"] == "reversal+2" and doc["lag_years"] == 2.0
+    assert doc["minimum_status"] == "pending" and doc["minimum_time"] > doc["reversal_time"]
+    assert doc["n_cycles"] == 8 and "is pending, not yet known" in " ".join(doc["notes"])
+    assert doc["target_cycle"] == 2  # the cycle that begins at the minimum after the 2033 reversal
+    # lag 2 yr < 4 yr: Kumar et al. (2021) caution
     assert any("Kumar et al. 2021" in w for w in doc["warnings"]) and "Kumar" in cap.err
     t = detail["time"]
+    assert t == pytest.approx(2035.0, abs=0.1)
     truth = np.mean(np.abs(6.0 * np.sin(2 * np.pi * (np.linspace(t - 0.5, t + 0.5, 2001) - 2033.0) / 22.0)))
     assert doc["precursor"] == pytest.approx(truth, rel=0.02)  # closed form of the constructed dipole
+    # --lag-years L is --phase reversal+L; an explicit phase whose window is incomplete is "no forecast"
     assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
                  "--config", str(config), "--lag-years", "2.0"]) == 0
     assert json.loads(capsys.readouterr().out)["precursor_detail"]["lag_years"] == 2.0
+    assert main(["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+                 "--config", str(config), "--phase", "reversal+3"]) == 3
+    cap = capsys.readouterr()
+    assert cap.out == "" and "no forecast: the window of +-0.5 yr around 3 yr after the final reversal" in cap.err
     assert main(["forecast", "--calibration", str(cal), "--store", str(tmp_path / "absent.polecast"),
                  "--sunspots", str(ssn)]) == 2
     assert "cannot take the precursor" in capsys.readouterr().err

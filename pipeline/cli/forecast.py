@@ -1,9 +1,19 @@
 """``polecast forecast``: next-cycle amplitude from the polar-field precursor.
 
-Two routes: ``--calibration CSV --precursor X`` (a precursor you give), or
-``--calibration CSV --store STORE --sunspots CSV`` (the precursor taken from
-the measured polar series at the last cycle minimum, or after the final
-reversal when the minimum is still ahead).
+Three sources of the precursor: ``--precursor X`` (a value you give, at the
+phase ``--phase``), ``--store STORE --sunspots CSV`` (the measured polar series
+of a store) or ``--series CSV --sunspots CSV`` (a polar-series table).  From a
+store or a table the precursor is taken as of ``--as-of`` (default: all the
+data) at the phase ``--phase`` (default ``[forecast] phase``, ``auto``), by
+:func:`pipeline.asof.forecast_inputs`; only calibration rows of that phase
+are fitted.
+
+Exit codes: 0 ok, 1 some calibration or series rows were skipped, 2 usage or
+configuration error (including a calibration scale that differs from the
+store's measurement definition, unless ``--allow-scale-mismatch``), 3 no
+forecast can be made from what is known (:data:`EXIT_NO_FORECAST`: no
+reversal yet, no complete window, fewer calibration rows of the phase than
+``[forecast] min_cycles``); each a one-line reason on stderr.
 """
 
 from __future__ import annotations
@@ -16,97 +26,204 @@ from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
 from pipeline.jsonio import finite_or_none
 
-__all__ = ["add_parser", "run", "precursor_from_store", "write_text"]
+__all__ = ["add_parser", "run", "write_text", "read_sunspots", "EXIT_NO_FORECAST"]
+
+#: exit code when no forecast can be made from what is known (documented; 2 stays "usage or configuration")
+EXIT_NO_FORECAST = 3
 
 
 def add_parser(sub) -> None:
     p = sub.add_parser("forecast", help="forecast the next cycle's amplitude from the polar precursor",
-                       description="Calibrate the polar-field precursor against past cycles and forecast the next "
-                                   "cycle's amplitude (maximum of the 13-month smoothed sunspot number) with 68% "
-                                   "and 95% prediction intervals and leave-one-out cross-validation. A statistical "
-                                   "forecast from few cycles: official space-weather forecasts and mission rules "
-                                   "govern operational decisions. Exit 0 ok, 1 when calibration rows were skipped, "
-                                   "2 for a usage error (including fewer than 4 calibration cycles).")
+                       description="Calibrate the polar-field precursor against past cycles of the same phase and "
+                                   "forecast the next cycle's amplitude (maximum of the 13-month smoothed sunspot "
+                                   "number) with 68% and 95% prediction intervals and leave-one-out "
+                                   "cross-validation, as of a date if asked (only what was known then is used). A "
+                                   "statistical forecast from few cycles: official space-weather forecasts and "
+                                   "mission rules govern operational decisions. Exit 0 ok, 1 when calibration or "
+                                   "series rows were skipped, 2 for a usage or configuration error (including a "
+                                   "calibration scale other than the store's), 3 when no forecast can be made yet "
+                                   "(no reversal, no complete window, or fewer than 4 calibration cycles of the "
+                                   "phase).")
     p.add_argument("--calibration", required=True, metavar="CSV",
-                   help="columns cycle,precursor,amplitude (optional precursor_error,amplitude_error)")
+                   help="columns cycle,precursor,amplitude (optional precursor_error,amplitude_error,phase,scale)")
     src = p.add_mutually_exclusive_group(required=True)
     src.add_argument("--precursor", type=float, metavar="G", help="the precursor of the coming cycle (gauss)")
     src.add_argument("--store", metavar="STORE", help="take the precursor from this store of measured frames")
-    p.add_argument("--sunspots", metavar="CSV", help="monthly sunspot numbers (with --store): cycle minima")
+    src.add_argument("--series", metavar="CSV",
+                     help="take the precursor from a polar-series table: time (decimal year),north_br_gauss,"
+                          "south_br_gauss, optional north_br_error_gauss,south_br_error_gauss")
+    p.add_argument("--sunspots", metavar="CSV", help="monthly sunspot numbers (with --store or --series)")
     p.add_argument("--precursor-error", type=float, metavar="G", help="one-sigma error of --precursor (gauss)")
+    p.add_argument("--phase", metavar="PHASE",
+                   help="auto (default: the minimum once known, else reversal+L with the largest complete lag), "
+                        "minimum, or reversal+L (L years after the final dipole reversal)")
+    p.add_argument("--lag-years", type=float, metavar="YR", help="the same as --phase reversal+YR")
+    p.add_argument("--as-of", metavar="DATE",
+                   help="use only data from before this date YYYY-MM-DD (with --store/--series); with --precursor "
+                        "it only labels the forecast (default today)")
+    p.add_argument("--scale", metavar="TEXT",
+                   help="what --precursor or --series measures, compared with the table's scale column")
+    p.add_argument("--allow-scale-mismatch", action="store_true",
+                   help="forecast although the table's scale differs from the one in force (recorded)")
     p.add_argument("--method", metavar="NAME", help="ols (default), odr or loglinear")
-    p.add_argument("--kind", metavar="NAME", help="with --store: dipole (default) or hemispheres")
-    p.add_argument("--window-years", type=float, metavar="YR", help="with --store: half-width of the window (0.5)")
-    p.add_argument("--lag-years", type=float, metavar="YR",
-                   help="with --store before the minimum: lag after the final reversal (default: newest window)")
-    p.add_argument("--as-of", metavar="DATE", help="date of the newest data used (with --precursor; default today)")
+    p.add_argument("--kind", metavar="NAME", help="with --store/--series: dipole (default) or hemispheres")
+    p.add_argument("--window-years", type=float, metavar="YR", help="half-width of the precursor window (0.5)")
     p.add_argument("--history", metavar="FILE", help="append this forecast to an append-only JSON Lines history")
     p.add_argument("--format", choices=("json", "text"), default="json", help="output format (default json)")
     p.add_argument("--config", metavar="PATH", help="TOML configuration file")
     p.set_defaults(func=run)
 
 
-def precursor_from_store(store_path, sunspots_path, settings, config=None, measure=None) -> dict:
-    """The precursor of the coming cycle from a store of measured frames and a sunspot file.
+def read_sunspots(path, cycle_settings):
+    """The monthly sunspot series of ``path`` in the declared (or detected) layout, and a note on a fallback.
 
-    Reads the store and the monthly sunspot CSV, builds the polar series and
-    the cycle landmarks, and hands them to
-    :func:`pipeline.precursor.precursor_for_forecast` (see there for the choice
-    between the value at the last minimum and the value after the final
-    reversal).
-
-    Only records measured under the measure settings in force are used:
-    ``measure`` (the ``[measure]`` section of a configuration given), or the
-    store's own when None (:func:`pipeline.store.check_measure_settings`).
+    Returns
+    -------
+    (pipeline.cycles.MonthlySeries, str or None)
+        The note is one line when the layout was detected rather than declared.
 
     Raises
     ------
     ValueError
-        When the store, the sunspot file or the coverage cannot give a precursor.
-    pipeline.store.StoreSettingsError
-        The store holds records measured under other settings (one line naming both).
+        The file cannot be read or matches no layout (the reason).
     """
-    from pipeline.aggregator import polar_series
-    from pipeline.cycles import cycle_landmarks, read_monthly_csv
-    from pipeline.precursor import precursor_for_forecast
-    from pipeline.store import check_measure_settings, open_store
+    from pipeline.cycles import read_sunspot_file
 
-    sections = getattr(config, "sections", {}) if config is not None else {}
-    with open_store(store_path) as store:
-        records = list(store.iter_records(measure=check_measure_settings(store, measure)))
-    if not records:
-        raise ValueError(f"store {store_path}: no measured frame; ingest magnetograms first")
-    series = polar_series(records, sections.get("series"))
-    months = read_monthly_csv(sunspots_path)
-    cycles = cycle_landmarks(months.time_decimal_year, months.values, sections.get("cycles"))
-    if not cycles:
-        raise ValueError(f"sunspot file {sunspots_path}: no cycle minimum found; give a longer monthly series")
-    series_settings = sections.get("series")
-    return precursor_for_forecast(series, cycles, settings, sections.get("reversals"),
-                                  series_settings.smoother if series_settings is not None else None)
+    months = read_sunspot_file(path, cycle_settings.sunspot_format)
+    note = None
+    if months.format_source == "detected":
+        note = (f"{path}: sunspot format not declared; read as {months.format} (declare it with "
+                f"[cycles] sunspot_format)")
+    return months, note
+
+
+def _fmt(value, spec: str, none: str = "n/a") -> str:
+    return none if value is None else format(value, spec)
 
 
 def write_text(doc: dict, stream=None) -> None:
+    """The forecast object as a few human-readable lines."""
     stream = sys.stdout if stream is None else stream
     lo68, hi68 = doc["interval_68"]
     lo95, hi95 = doc["interval_95"]
-    stream.write(f"next-cycle amplitude: {doc['amplitude']:.1f} (68%: {lo68:.1f} - {hi68:.1f}; "
-                 f"95%: {lo95:.1f} - {hi95:.1f})\n")
-    stream.write(f"precursor {doc['precursor']:.4g} G; method {doc['method']}; {doc['n_cycles']} calibration "
-                 f"cycles; r = {doc['r']:.3f}; leave-one-out RMSE {doc['loo_rmse']:.1f}\n")
+    target = doc.get("target_cycle")
+    stream.write(f"{'next-cycle' if target is None else f'cycle {target}'} amplitude: {doc['amplitude']:.1f} "
+                 f"(68%: {lo68:.1f} - {hi68:.1f}; 95%: {lo95:.1f} - {hi95:.1f})\n")
+    stream.write(f"precursor {doc['precursor']:.4g} G at phase {doc.get('phase')}; method {doc['method']}; "
+                 f"{doc['n_cycles']} calibration cycles; r = {doc['r']:.3f}; leave-one-out RMSE {doc['loo_rmse']:.1f}\n")
+    if doc.get("precursor_source") in ("store", "series"):
+        stream.write(f"final reversal {_fmt(doc.get('reversal_time'), '.3f')}; minimum "
+                     f"{_fmt(doc.get('minimum_time'), '.3f')} ({doc.get('minimum_status') or 'not known'}); data to "
+                     f"{doc.get('data_date')}" + (f" (as of {doc['as_of']})" if doc.get("as_of") else "") + "\n")
+    for reason in doc.get("provisional_reasons", []) or []:
+        stream.write(f"may be revised: {reason}\n")
     for w in doc.get("warnings", []):
         stream.write(f"warning: {w}\n")
     stream.write(f"caution: {doc['cautions']}\n")
 
 
+def _given_state(args, settings, phase, prog):
+    """The state keys of a given precursor, or an error line."""
+    from pipeline.asof import as_of_instant
+    from pipeline.precursor import AUTO_PHASE, phase_lag_years
+
+    notes = []
+    if phase == AUTO_PHASE:
+        phase = "minimum"
+        notes.append("a given precursor is taken to be at the phase 'minimum' (give --phase otherwise)")
+    given = args.as_of if args.as_of is not None else settings.as_of
+    if given is not None:
+        try:
+            cut = as_of_instant(given)
+        except ValueError:
+            return None, f"{prog}: --as-of: got {given!r}; expected an ISO date YYYY-MM-DD"
+        data_date, as_of = cut.date, cut.date
+    else:
+        data_date, as_of = _dt.datetime.now(_dt.timezone.utc).date().isoformat(), None
+    state = {"phase": phase, "lag_years": phase_lag_years(phase), "minimum_time": None, "minimum_status": None,
+             "reversal_time": None, "target_cycle": None, "data_date": data_date, "as_of": as_of,
+             "phase_requested": phase, "phase_notes": notes, "provisional": False, "provisional_reasons": [],
+             "forecast_unavailable": None, "precursor_source": "given"}
+    return state, None
+
+
+def _requested_phase(args, config, prog):
+    from pipeline.config import ConfigError
+    from pipeline.precursor import check_phase_request
+
+    if args.lag_years is not None and args.phase is not None:
+        return None, f"{prog}: give --phase or --lag-years, not both"
+    try:
+        if args.lag_years is not None:
+            from pipeline.regression import reversal_phase
+
+            return reversal_phase(args.lag_years), None
+        if args.phase is not None:
+            return check_phase_request("--phase", args.phase), None
+        return config.forecast.phase, None
+    except (ConfigError, ValueError) as exc:
+        return None, f"{prog}: {exc}"
+
+
+def _measured_state(args, config, phase, prog):
+    """``(inputs, problems, notes, None)`` from --store/--series, or ``(None, [], [], (code, line))``."""
+    from pipeline.asof import forecast_inputs, read_series_table
+    from pipeline.cli.series import given_measure, load_records
+    from pipeline.config import ConfigError
+
+    what = "--store" if args.store is not None else "--series"
+    if args.sunspots is None:
+        return None, [], [], (EXIT_USAGE, f"{prog}: {what} needs --sunspots CSV (monthly sunspot numbers) to find "
+                                          f"the cycle minima")
+    if args.store is not None and args.scale is not None:
+        return None, [], [], (EXIT_USAGE, f"{prog}: --scale applies to --precursor and --series; with --store the "
+                                          f"store's measurement definition is the scale in force")
+    problems: list[str] = []
+    if args.store is not None:
+        source, err = load_records(args.store, given_measure(args, config))
+        if source is None:
+            return None, [], [], (EXIT_USAGE, f"{prog}: cannot take the precursor from {args.store}: {err}")
+        if not source:
+            return None, [], [], (EXIT_USAGE, f"{prog}: cannot take the precursor from {args.store}: no measured "
+                                              f"frame; ingest magnetograms first")
+    else:
+        try:
+            source = read_series_table(args.series)
+        except ValueError as exc:
+            return None, [], [], (EXIT_USAGE, f"{prog}: {exc}")
+        problems += source.problems
+    try:
+        months, note = read_sunspots(args.sunspots, config.cycles)
+    except ValueError as exc:
+        return None, [], [], (EXIT_USAGE, f"{prog}: {exc}")
+    problems += [f"{args.sunspots} {p}" for p in months.problems]
+    try:
+        inputs = forecast_inputs(source, months, config, phase=phase, as_of=args.as_of)
+    except ConfigError as exc:
+        return None, [], [], (EXIT_USAGE, f"{prog}: {exc}")
+    except ValueError as exc:  # e.g. pipeline.b0.MixedRecordsError: records of two definitions
+        return None, [], [], (EXIT_USAGE, f"{prog}: cannot take the precursor from {args.store or args.series}: {exc}")
+    return inputs, problems, [note] if note else [], None
+
+
+def _say_notes(prog: str, notes) -> None:
+    for note in notes:
+        print(f"{prog}: note: {note}", file=sys.stderr)
+
+
 def run(args) -> int:
+    from pipeline.asof import NoForecastError, forecast_document
     from pipeline.history import append_history, history_entry
-    from pipeline.regression import forecast_amplitude, read_calibration_csv
+    from pipeline.regression import InsufficientCalibrationError, forecast_amplitude, read_calibration_csv
 
     config = load_config(args.config, forecast={"method": args.method, "precursor_kind": args.kind,
-                                                "window_years": args.window_years, "lag_years": args.lag_years})
+                                                "window_years": args.window_years})
     settings = config.forecast
     prog = "polecast forecast"
+    phase, err = _requested_phase(args, config, prog)
+    if err:
+        print(err, file=sys.stderr)
+        return EXIT_USAGE
     try:
         table = read_calibration_csv(args.calibration)
     except ValueError as exc:
@@ -114,51 +231,47 @@ def run(args) -> int:
         return EXIT_USAGE
     for reason in table.problems:
         print(f"{prog}: skipped {args.calibration} {reason}", file=sys.stderr)
-    extra: dict = {}
-    if args.store is not None:
-        if args.sunspots is None:
-            print(f"{prog}: --store needs --sunspots CSV (monthly sunspot numbers) to find the cycle minimum",
-                  file=sys.stderr)
-            return EXIT_USAGE
-        try:
-            from pipeline.cli.series import given_measure
-
-            item = precursor_from_store(args.store, args.sunspots, settings, config, given_measure(args, config))
-        except (ValueError, OSError, ImportError, RuntimeError) as exc:  # StoreError is a RuntimeError
-            print(f"{prog}: cannot take the precursor from {args.store}: {exc}", file=sys.stderr)
-            return EXIT_USAGE
-        precursor, precursor_error = item["precursor_gauss"], item["precursor_error_gauss"]
-        data_date, source = item["data_date"], "store"
-        extra["precursor_detail"] = item
-    else:
-        precursor, precursor_error, source = args.precursor, args.precursor_error, "given"
-        if args.as_of is not None:
-            try:
-                data_date = _dt.date.fromisoformat(args.as_of[:10]).isoformat()
-            except ValueError:
-                print(f"{prog}: --as-of: got {args.as_of!r}; expected an ISO date YYYY-MM-DD", file=sys.stderr)
-                return EXIT_USAGE
-        else:
-            data_date = _dt.datetime.now(_dt.timezone.utc).date().isoformat()
+    problems: list[str] = []
     try:
-        result = forecast_amplitude(table, precursor, settings, precursor_error=precursor_error)
-    except ValueError as exc:
+        if args.precursor is not None:
+            state, err = _given_state(args, settings, phase, prog)
+            if err:
+                print(err, file=sys.stderr)
+                return EXIT_USAGE
+            result = forecast_amplitude(table, args.precursor, settings, precursor_error=args.precursor_error,
+                                        phase=state["phase"], scale=args.scale,
+                                        allow_scale_mismatch=args.allow_scale_mismatch)
+            doc = result.to_dict()
+            doc.update(state)
+            doc["notes"] = list(state["phase_notes"])
+            _say_notes(prog, doc["notes"])
+            doc["skipped_rows"] = list(table.problems)
+        else:
+            inputs, problems, notes, failure = _measured_state(args, config, phase, prog)
+            if failure is not None:
+                print(failure[1], file=sys.stderr)
+                return failure[0]
+            for reason in problems:
+                print(f"{prog}: skipped {reason}", file=sys.stderr)
+            _say_notes(prog, notes + list(inputs.choice.notes) + list(inputs.notes))
+            doc = forecast_document(inputs, table, settings, scale=args.scale,
+                                    allow_scale_mismatch=args.allow_scale_mismatch)
+            doc["notes"] = notes + doc["notes"]
+    except (NoForecastError, InsufficientCalibrationError) as exc:
+        print(f"{prog}: no forecast: {exc}", file=sys.stderr)
+        return EXIT_NO_FORECAST
+    except ValueError as exc:  # ScaleMismatchError, FitError, a method the table cannot support
         print(f"{prog}: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    doc = result.to_dict()
-    notes = list(extra.get("precursor_detail", {}).get("notes", []) or [])
-    doc["warnings"] = doc["warnings"] + notes
-    doc["data_date"] = data_date
-    doc["precursor_source"] = source
-    doc["skipped_rows"] = list(table.problems)
-    doc.update(extra)
     doc = finite_or_none(doc)
     for w in doc["warnings"]:
         print(f"{prog}: warning: {w}", file=sys.stderr)
+    for reason in doc.get("provisional_reasons") or []:
+        print(f"{prog}: may be revised by later data: {reason}", file=sys.stderr)
     if args.history is not None:
         try:
-            append_history(args.history, history_entry(doc, data_date, calibration=str(args.calibration),
-                                                       precursor_source=source))
+            append_history(args.history, history_entry(doc, doc["data_date"], calibration=str(args.calibration),
+                                                       precursor_source=doc["precursor_source"]))
         except ValueError as exc:
             print(f"{prog}: {exc}", file=sys.stderr)
             return EXIT_USAGE
@@ -167,4 +280,4 @@ def run(args) -> int:
         sys.stdout.write("\n")
     else:
         write_text(doc)
-    return EXIT_SKIPPED if table.problems else EXIT_OK
+    return EXIT_SKIPPED if (table.problems or problems) else EXIT_OK
