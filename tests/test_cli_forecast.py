@@ -223,3 +223,129 @@ def test_store_route_refuses_records_of_other_settings(tmp_path, capsys):
     assert cap.out == "" and len(lines) == 1 and "Traceback" not in cap.err
     assert "measure.cap_latitude_deg 60.0 (records) vs 70.0 (in force)" in lines[0]
     assert lines[0].startswith(f"polecast forecast: cannot take the precursor from {store}")
+
+
+# ---- issue 10: --series, --as-of, --phase, exit 3, scale ------------------------------------------------
+
+ROTATION_YEARS = 27.2753 / 365.25  # Carrington synodic period (common practice, no source)
+
+
+def _series_csv(path, t0, t1, seed=8):
+    """Tessaly's polar series per rotation, dipole 6 sin(2 pi (t - 2033)/22) G + 0.2 G noise (invented);
+    the noise of row k is the k-th draw of one seeded stream, so a longer table only appends rows."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(t0, t1, ROTATION_YEARS)
+    d = 6.0 * np.sin(2 * np.pi * (t - 2033.0) / 22.0)
+    noise = rng.normal(0, 0.2, (t.size, 2))
+    rows = [f"{a:.6f},{n:.5f},{s:.5f},0.2,0.2" for a, n, s in zip(t, d + noise[:, 0], -d + noise[:, 1])]
+    path.write_text("time,north_br_gauss,south_br_gauss,north_br_error_gauss,south_br_error_gauss\n"
+                    + "\n".join(rows) + "\n")
+
+
+def _plain_config(tmp_path, extra=""):
+    path = tmp_path / "plain.toml"
+    path.write_text('[cycles]\nsunspot_format = "plain-csv"\n' + extra)
+    return path
+
+
+def test_series_route_as_of_keys_and_causality(tmp_path, capsys):
+    """The forecast JSON as of 2036-04-01 from a series table and sunspot file ending at the date, and from
+    the same files with six more years appended: identical (issue 10's causality check, through the CLI)."""
+    cal = tmp_path / "cal.csv"
+    _phase_table(cal, ["reversal+2", "minimum"], n=12)
+    config = _plain_config(tmp_path)
+    runs = []
+    for name, t_end in (("short", 2036.25), ("long", 2042.0)):
+        series, ssn = tmp_path / f"{name}.csv", tmp_path / f"{name}_ssn.csv"
+        _series_csv(series, 2030.0, t_end)
+        _sunspots(ssn, t_end)
+        assert main(["forecast", "--calibration", str(cal), "--series", str(series), "--sunspots", str(ssn),
+                     "--as-of", "2036-04-01", "--config", str(config)]) == 0
+        runs.append(capsys.readouterr().out)
+    assert runs[0] == runs[1]
+    doc = json.loads(runs[0])
+    # closed-loop truth of the seeded series: reversal 2033.0; rows to 2036.23, so reversal+2 is the
+    # largest complete lag (reversal+3 needs data to 2036.5)
+    assert doc["phase"] == "reversal+2" and doc["lag_years"] == 2.0 and doc["n_cycles"] == 6
+    assert doc["reversal_time"] == pytest.approx(2033.0, abs=0.1) and doc["target_cycle"] == 2
+    assert doc["as_of"] == "2036-04-01" and doc["data_date"] < "2036-04-01" and doc["precursor_source"] == "series"
+    for key in ("minimum_time", "minimum_status", "provisional", "provisional_reasons", "scale_override"):
+        assert key in doc
+    # the same table with no --as-of uses all of it: the minimum of 2038.5 is confirmed by 2042
+    long_series, long_ssn = tmp_path / "long.csv", tmp_path / "long_ssn.csv"
+    assert main(["forecast", "--calibration", str(cal), "--series", str(long_series), "--sunspots", str(long_ssn),
+                 "--config", str(config), "--format", "text"]) == 0
+    out = capsys.readouterr().out
+    assert "cycle 2 amplitude:" in out and "at phase minimum" in out and "(confirmed)" in out
+
+
+def test_no_forecast_exits_3_with_one_line(tmp_path, capsys):
+    cal = tmp_path / "cal.csv"
+    _phase_table(cal, ["minimum"], n=8)
+    config = _plain_config(tmp_path)
+    series, ssn = tmp_path / "s.csv", tmp_path / "ssn.csv"
+    _series_csv(series, 2030.0, 2032.8)  # the dipole has not reversed yet (2033.0)
+    _sunspots(ssn, 2032.8)
+    cases = [
+        (["--series", str(series)], "no dipole reversal in the polar series"),
+        (["--series", str(tmp_path / "later.csv"), "--as-of", "2036-04-01"], "phase 'reversal+2' (the table has rows "
+                                                                           "of phase 'minimum': 8)"),
+    ]
+    _series_csv(tmp_path / "later.csv", 2030.0, 2042.0)
+    _sunspots(ssn, 2042.0)
+    for extra, reason in cases:
+        assert main(["forecast", "--calibration", str(cal), "--sunspots", str(ssn), "--config", str(config)]
+                    + extra) == 3
+        cap = capsys.readouterr()
+        failing = [line for line in cap.err.splitlines() if "no forecast" in line]
+        assert cap.out == "" and len(failing) == 1 and reason in failing[0] and "Traceback" not in cap.err
+        assert failing[0].startswith("polecast forecast: no forecast: ")
+
+
+def test_scale_mismatch_exit_2_unless_allowed(tmp_path, capsys):
+    store, config = _store_with_dipole(tmp_path, 2042.0)
+    ssn = tmp_path / "ssn.csv"
+    _sunspots(ssn, 2041.0)
+    cal = tmp_path / "cal.csv"
+    _write_table(cal)
+    other = "instrument=OTHER; cap_latitude_deg=70; b0_method=fill; precursor_kind=dipole"
+    lines = cal.read_text().splitlines()
+    cal.write_text(lines[0] + ",scale\n" + "\n".join(f'{line},"{other}"' for line in lines[1:]) + "\n")
+    base = ["forecast", "--calibration", str(cal), "--store", str(store), "--sunspots", str(ssn),
+            "--config", str(config)]
+    assert main(base) == 2
+    cap = capsys.readouterr()
+    # the store's records name no instrument (a fallback, said as a note) and were measured at 60 deg, visible
+    in_force = "instrument=unnamed; cap_latitude_deg=60; b0_method=visible; precursor_kind=dipole"
+    err = [line for line in cap.err.splitlines() if "differs" in line]
+    assert cap.out == "" and len(err) == 1 and other in err[0] and in_force in err[0]
+    assert "no instrument" in cap.err
+    assert main(base + ["--allow-scale-mismatch"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["scale_override"]["table_scales"] == [other] and doc["scale_override"]["scale_in_force"] == in_force
+    assert any("scale mismatch allowed" in w for w in doc["warnings"])
+    assert main(base + ["--scale", "x"]) == 2
+    assert "--scale applies to --precursor and --series" in capsys.readouterr().err
+
+
+def test_given_precursor_phase_and_options(tmp_path, capsys):
+    cal = tmp_path / "cal.csv"
+    _phase_table(cal, ["reversal+4"], n=8)
+    assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5", "--phase", "reversal+4.0"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert (doc["phase"], doc["lag_years"], doc["n_cycles"], doc["precursor_source"]) == ("reversal+4", 4.0, 8, "given")
+    assert doc["minimum_time"] is None and doc["target_cycle"] is None and doc["as_of"] is None
+    # without --phase a given precursor is at the minimum: the table has none of that phase
+    assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5"]) == 3
+    cap = capsys.readouterr()
+    assert "taken to be at the phase 'minimum'" in cap.err and "no forecast" in cap.err
+    config = tmp_path / "c.toml"
+    config.write_text('[forecast]\nphase = "reversal+4"\nas_of = "2034-05-01"\n')
+    assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5", "--config", str(config)]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["phase"] == "reversal+4" and doc["as_of"] == doc["data_date"] == "2034-05-01"
+    assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5", "--phase", "max"]) == 2
+    assert "--phase: got 'max'; valid phases are 'auto'" in capsys.readouterr().err
+    assert main(["forecast", "--calibration", str(cal), "--precursor", "1.5", "--phase", "minimum",
+                 "--lag-years", "4"]) == 2
+    assert "give --phase or --lag-years, not both" in capsys.readouterr().err

@@ -5,7 +5,9 @@ import pytest
 import xarray as xr
 from scipy import stats
 
-from pipeline.precursor import (latest_precursor, precursor_after_reversal, precursor_at, precursor_at_minima,
+from pipeline.config import ConfigError
+from pipeline.precursor import (check_lags_years, check_phase_request, choose_phase, latest_precursor, phase_lag_years,
+                                precursor_after_reversal, precursor_at, precursor_at_minima, precursor_at_phase,
                                 rotation_magnitude)
 from pipeline.timeutil import decimal_year, from_decimal_year
 
@@ -148,3 +150,84 @@ def test_error_paths():
     empty["dipole_br_rotation_gauss"][:] = np.nan
     with pytest.raises(ValueError, match="no rotation with a measured value"):
         latest_precursor(empty, 2033.0)
+
+
+# ---- phase choice (issue 10's rule for "auto"; the rule itself has no outside source: regression only) -----
+
+LAGS = (2.0, 3.0, 4.0, 5.0, 6.0)
+
+
+@pytest.mark.parametrize("minimum, end, phase, lag", [
+    ((2038.5, "confirmed"), 2040.0, "minimum", None),      # known minimum after the reversal, window complete
+    ((2038.5, "pinned"), 2039.0, "minimum", None),         # pinned counts as known; window ends exactly at the data
+    ((2038.5, "pending"), 2040.0, "reversal+6", 6.0),      # a pending candidate is not known: largest complete lag
+    ((2038.5, "confirmed"), 2038.8, "reversal+5", 5.0),    # known, but its window is open: 2033 + 5.5 <= 2038.8
+    ((2031.0, "confirmed"), 2037.0, "reversal+3", 3.0),    # the minimum precedes the reversal: not the one after it
+    ((None, "unresolved"), 2035.5, "reversal+2", 2.0),     # 2033 + 2 + 0.5 = 2035.5 <= 2035.5: complete
+])
+def test_auto_phase_rule(minimum, end, phase, lag):
+    choice = choose_phase(2033.0, minimum, end, LAGS, 0.5)
+    assert (choice.phase, choice.lag_years, choice.reason) == (phase, lag, None)
+    assert choice.center_time == (minimum[0] if phase == "minimum" else 2033.0 + lag)
+    if minimum[1] == "pending":
+        assert "is pending, not yet known (confirmed or pinned)" in choice.notes[0]
+    if minimum == (2038.5, "confirmed") and end == 2038.8:
+        assert "its window of +-0.5 yr is not complete yet" in choice.notes[0]
+
+
+def test_auto_phase_without_a_window():
+    early = choose_phase(2033.0, (2038.5, "pending"), 2035.4, LAGS, 0.5)
+    assert early.phase is None and early.reason.startswith("no configured lag after the final dipole reversal at "
+                                                           "2033.000 has a complete window yet")
+    assert "reversal+2 needs data to 2035.500" in early.reason
+    assert "no dipole reversal in the polar series" in choose_phase(None, (None, "unresolved"), 2040.0).reason
+    # no reversal in the series (it starts after it), but a confirmed minimum with a complete window
+    only_min = choose_phase(None, {"time": 2038.5, "status": "confirmed"}, 2040.0)
+    assert only_min.phase == "minimum" and "no dipole reversal" in only_min.notes[0]
+    assert "no measured rotation" in choose_phase(2033.0, None, None).reason
+
+
+def test_explicit_phases():
+    # an explicit minimum takes the current minimum whatever its status, and says when it is pending
+    pend = choose_phase(2033.0, (2038.5, "pending"), 2040.0, requested="minimum")
+    assert pend.phase == "minimum" and "is pending: it may move" in pend.notes[0]
+    assert "no cycle minimum is known" in choose_phase(2033.0, (None, "unresolved"), 2040.0,
+                                                        requested="minimum").reason
+    assert "is not complete" in choose_phase(2033.0, (2038.5, "confirmed"), 2038.9, requested="minimum").reason
+    # an explicit reversal+L need not be one of the configured lags; its window must be complete
+    odd = choose_phase(2033.0, None, 2040.0, LAGS, 0.5, requested="Reversal+4.50")
+    assert (odd.phase, odd.lag_years, odd.center_time) == ("reversal+4.5", 4.5, 2037.5)
+    late = choose_phase(2033.0, None, 2037.9, LAGS, 0.5, requested="reversal+4.5")
+    assert late.phase is None and "needs data to 2038.000" in late.reason
+    assert "needs the final reversal" in choose_phase(None, None, 2040.0, requested="reversal+4").reason
+
+
+def test_phase_validation():
+    assert check_phase_request("forecast.phase", " AUTO ") == "auto"
+    assert check_phase_request("forecast.phase", "reversal+4.0") == "reversal+4"
+    with pytest.raises(ConfigError, match=r"--phase: got 'reversal-4'; valid phases are 'auto', 'minimum'"):
+        check_phase_request("--phase", "reversal-4")
+    assert check_lags_years("k", [6, 2, 2.5, 2]) == (2.0, 2.5, 6.0)
+    for bad in ([], "2,3", [2, True], [2, -1], [2, float("nan")]):
+        with pytest.raises(ConfigError, match="k: got"):
+            check_lags_years("k", bad)
+    assert phase_lag_years("minimum") is None and phase_lag_years("reversal+2.5") == 2.5
+
+
+def test_precursor_at_phase_is_the_window_mean_there():
+    ds = _series(t0=2030.0, t1=2042.0, seed=6)
+    at_min = precursor_at_phase(ds, choose_phase(2033.0, (2038.5, "confirmed"), 2041.0), 2033.0)
+    assert at_min["precursor_gauss"] == precursor_at(ds, 2038.5)["precursor_gauss"]
+    assert (at_min["phase"], at_min["route"], at_min["lag_years"], at_min["notes"]) == ("minimum", "minimum", None, [])
+    lagged = precursor_at_phase(ds, choose_phase(2033.0, (2038.5, "pending"), 2041.0), 2033.0)
+    assert lagged["phase"] == "reversal+6" and lagged["route"] == "after_reversal"
+    assert lagged["precursor_gauss"] == precursor_after_reversal(ds, 2033.0, 6.0)["precursor_gauss"]
+    # closed-loop truth of the seeded series: the window mean of |6 sin(2 pi (t - 2033)/22)| at 2039
+    tt = np.linspace(2038.5, 2039.5, 20001)
+    truth = np.mean(np.abs(6.0 * np.sin(2 * np.pi * (tt - 2033.0) / 22.0)))
+    assert abs(lagged["precursor_gauss"] - truth) < 4 * lagged["precursor_error_gauss"] + 0.01
+    # a lag under about 4 yr carries the Kumar et al. (2021) caution
+    early = precursor_at_phase(ds, choose_phase(2033.0, None, 2041.0, requested="reversal+2"), 2033.0)
+    assert "Kumar et al. 2021" in early["notes"][0]
+    with pytest.raises(ValueError, match="no configured lag"):
+        precursor_at_phase(ds, choose_phase(2033.0, None, 2034.0), 2033.0)

@@ -238,13 +238,13 @@ def run(args) -> int:
             if err:
                 print(err, file=sys.stderr)
                 return EXIT_USAGE
+            _say_notes(prog, state["phase_notes"])
             result = forecast_amplitude(table, args.precursor, settings, precursor_error=args.precursor_error,
                                         phase=state["phase"], scale=args.scale,
                                         allow_scale_mismatch=args.allow_scale_mismatch)
             doc = result.to_dict()
             doc.update(state)
             doc["notes"] = list(state["phase_notes"])
-            _say_notes(prog, doc["notes"])
             doc["skipped_rows"] = list(table.problems)
         else:
             inputs, problems, notes, failure = _measured_state(args, config, phase, prog)
