@@ -20,7 +20,12 @@ Files written into the output directory:
 ``sunspots.csv``
     ``time,sunspot_number``: monthly means, time as decimal year.
 ``calibration.csv``
-    ``cycle,precursor,amplitude,precursor_error,amplitude_error`` of earlier cycles.
+    ``cycle,precursor,amplitude,precursor_error,amplitude_error,phase,scale``
+    of earlier cycles (:func:`calibration_csv_text`): one row per cycle at the
+    phase ``minimum`` and at each ``reversal+L`` (L = 2, 3, 4, 5, 6 years after
+    the cycle's final dipole reversal) whose window fits, all from the star's
+    true whole-cap dipole; ``scale`` names that
+    (:data:`pipeline.synth.truth.TRUTH_SCALE`).
 
 The same seed gives the same star and, for the same arguments, byte-identical
 FITS files (no wall-clock dates, no CHECKSUM/DATASUM cards); each frame's
@@ -42,11 +47,15 @@ from pipeline.synth.instrument import (INSTRUMENT, OBSERVATORY, ObservingSetup, 
                                        geometry_for, instrument_noise, write_magnetogram)
 from pipeline.synth.star import StarHistory, StarParameters, datetime64_to_days, star_history
 from pipeline.synth.surface import SurfaceOptions, surface_field
-from pipeline.synth.truth import (calibration_rows, cycle_landmarks_truth, pearson_r, precursor_gauss,
-                                  sign_changes_yr, visible_cap_means_gauss)
+from pipeline.synth.truth import (TRUTH_SCALE, calibration_rows, cycle_landmarks_truth, pearson_r,
+                                  phase_precursors, precursor_gauss, sign_changes_yr, visible_cap_means_gauss)
 
 __all__ = ["ArchiveSettings", "ArchiveResult", "frame_times", "frame_name", "render_frame", "write_frame_file",
-           "truth_summary", "write_archive", "SPAN_LIMITS_YR"]
+           "truth_summary", "calibration_csv_text", "truth_json_text", "CALIBRATION_COLUMNS", "write_archive",
+           "SPAN_LIMITS_YR"]
+
+#: columns of the archive's calibration.csv (the order ``pipeline.regression.format_calibration_csv`` writes)
+CALIBRATION_COLUMNS = ("cycle", "precursor", "amplitude", "precursor_error", "amplitude_error", "phase", "scale")
 
 #: spans must leave spin-up before them and room for the next cycle after them (decimal years)
 SPAN_LIMITS_YR = (1760.0, 2110.0)
@@ -230,7 +239,12 @@ def truth_summary(history: StarHistory, settings: ArchiveSettings, cap_latitude_
     last = minima[-1] if minima else None
     next_cycle = last  # the cycle that starts at the last minimum (its maximum may lie after the span)
     precursor = precursor_gauss(history, last["minimum_time"]) if last else (None, None)
+    at_phase = _last_cycle_phases(history, landmarks, last, (y0, y1))
     calib = calibration_rows(history, y0)
+    by_phase = {}
+    for row in calib:
+        by_phase.setdefault(row["phase"], []).append(row)
+    calib_min = by_phase.get("minimum", [])
     return {
         "star": history.params.name,
         "instrument": f"{INSTRUMENT} (Kestrel Vector Magnetograph, fictional), {OBSERVATORY}",
@@ -243,19 +257,51 @@ def truth_summary(history: StarHistory, settings: ArchiveSettings, cap_latitude_
         "last_minimum_time": last["minimum_time"] if last else None,
         "precursor_at_last_minimum": precursor[0],
         "precursor_at_last_minimum_error": precursor[1],
+        "final_dipole_reversal": at_phase["reversal_time"],
+        "precursor_at_phase": {k: v["precursor"] for k, v in at_phase["phases"].items()},
+        "precursor_at_phase_error": {k: v["precursor_error"] for k, v in at_phase["phases"].items()},
+        "precursor_window_centre": {k: v["center_time"] for k, v in at_phase["phases"].items()},
         "next_amplitude": next_cycle["maximum_value"] if last else None,
         "next_maximum_time": next_cycle["maximum_time"] if last else None,
         "next_cycle": last["cycle"] if last else None,
-        "calibration_cycles": len(calib),
-        "calibration_correlation": pearson_r([r["precursor"] for r in calib], [r["amplitude"] for r in calib])
-        if len(calib) > 2 else None,
+        "calibration_cycles": len(calib_min),
+        "calibration_correlation": _correlation(calib_min),
+        "calibration_rows_by_phase": {k: len(v) for k, v in by_phase.items()},
+        "calibration_correlation_by_phase": {k: _correlation(v) for k, v in by_phase.items()},
+        "calibration_scale": TRUTH_SCALE,
         "notes": "Synthetic data of an invented star for the demo and tests only. Reversals: every sign "
                  "change of the true whole-cap mean |lat| >= cap_latitude_deg; cycles from the 13-month "
                  "smoothed monthly sunspot number; precursor = mean |(north - south)/2| within +-0.5 yr "
-                 "of the minimum; times are decimal years.",
+                 "of the window centre: the minimum (phase 'minimum', also precursor_at_last_minimum) or "
+                 "L years after the cycle's final dipole reversal, the last sign change of the true "
+                 "(north - south)/2 before the minimum (phase 'reversal+L'); precursor_at_phase lists the "
+                 "phases of the last minimum's cycle whose window lies inside the span; calibration_cycles "
+                 "and calibration_correlation are those of the 'minimum' rows; times are decimal years.",
         "generator": {**asdict(settings), "offset_pixels": list(settings.offset_pixels),
                       "star_parameters": _jsonable(asdict(history.params))},
     }
+
+
+def _correlation(rows: list) -> float | None:
+    """Pearson r of precursor and amplitude over calibration rows (None for fewer than three)."""
+    if len(rows) <= 2:
+        return None
+    return pearson_r([r["precursor"] for r in rows], [r["amplitude"] for r in rows])
+
+
+def _last_cycle_phases(history: StarHistory, landmarks: list, last: dict | None, span_yr: tuple) -> dict:
+    """:func:`pipeline.synth.truth.phase_precursors` of the cycle starting at the span's last minimum.
+
+    Only what an observer of the span could measure: the final reversal must lie in the span (else
+    None and no ``reversal+L`` phase) and every window inside it.
+    """
+    if last is None:
+        return {"reversal_time": None, "phases": {}}
+    k = next(i for i, lm in enumerate(landmarks) if lm["cycle"] == last["cycle"])
+    previous = landmarks[k - 1]["minimum_time"] if k > 0 else float(history.time_yr[0])
+    previous = max(previous, span_yr[0])  # a reversal before the span is unknown to its observer
+    return phase_precursors(history.time_yr, history.dipole_gauss, last["minimum_time"], previous,
+                            within_yr=span_yr)
 
 
 def _jsonable(d):
@@ -279,6 +325,36 @@ def _f(x, fmt="{:.6g}"):
     return "" if x is None or not np.isfinite(x) else fmt.format(x)
 
 
+def _error_cell(x) -> str:
+    """A one-sigma error to 4 decimals; two significant digits when 4 decimals would round it to zero
+    (the calibration reader refuses an error that is not positive); blank when unknown."""
+    cell = _f(x, "{:.4f}")
+    return _f(x, "{:.2g}") if cell and float(cell) == 0.0 else cell
+
+
+def calibration_csv_text(rows: list) -> str:
+    """The archive's ``calibration.csv`` text from :func:`pipeline.synth.truth.calibration_rows`.
+
+    Columns :data:`CALIBRATION_COLUMNS`; precursor and its error in gauss to
+    4 decimals, amplitude and its error (sunspot number) to 2; an unknown
+    error is a blank cell.  ``pipeline.regression.read_calibration_csv``
+    reads it (phase and scale per row).
+    """
+    import io
+
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(CALIBRATION_COLUMNS)
+    w.writerows([[r["cycle"], f"{r['precursor']:.4f}", f"{r['amplitude']:.2f}", _error_cell(r["precursor_error"]),
+                  _f(r["amplitude_error"], "{:.2f}"), r["phase"], r["scale"]] for r in rows])
+    return buf.getvalue()
+
+
+def truth_json_text(truth: dict) -> str:
+    """The archive's ``truth.json`` text from :func:`truth_summary` (indent 1, trailing newline)."""
+    return json.dumps(truth, indent=1) + "\n"
+
+
 def _write_truth_files(out: Path, history: StarHistory, settings: ArchiveSettings, truth: dict,
                        frame_rows: list) -> None:
     import xarray as xr
@@ -298,10 +374,8 @@ def _write_truth_files(out: Path, history: StarHistory, settings: ArchiveSetting
     ms = (history.month_mid_yr >= y0) & (history.month_mid_yr <= y1)
     _write_csv(out / "sunspots.csv", ["time", "sunspot_number"],
                [[f"{y:.3f}", f"{r:.1f}"] for y, r in zip(history.month_mid_yr[ms], history.sunspot_observed[ms])])
-    calib = calibration_rows(history, y0)
-    _write_csv(out / "calibration.csv", ["cycle", "precursor", "amplitude", "precursor_error", "amplitude_error"],
-               [[r["cycle"], f"{r['precursor']:.4f}", f"{r['amplitude']:.2f}", _f(r["precursor_error"], "{:.4f}"),
-                 _f(r["amplitude_error"], "{:.2f}")] for r in calib])
+    with open(out / "calibration.csv", "w", newline="", encoding="utf-8") as fh:
+        fh.write(calibration_csv_text(calibration_rows(history, y0)))
     lat = history.grid.latitude_deg[::-1]
     da = xr.DataArray(history.br_gauss[sel][:, ::-1].T.astype(np.float32), dims=("latitude", "time"),
                       coords={"latitude": lat, "time": times}, name="br",
@@ -311,8 +385,7 @@ def _write_truth_files(out: Path, history: StarHistory, settings: ArchiveSetting
     ds.attrs.update(star=history.params.name, seed=int(history.seed),
                     description="true axisymmetric Br of the synthetic star (flux-transport cell means)")
     with open(out / "truth.json", "w", encoding="utf-8") as fh:
-        json.dump(truth, fh, indent=1)
-        fh.write("\n")
+        fh.write(truth_json_text(truth))
     ds.to_netcdf(out / "truth_br.nc", engine="scipy")  # netCDF3: needs only scipy
 
 

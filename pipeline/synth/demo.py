@@ -8,7 +8,8 @@ A seed qualifies when each pole reverses inside the span and the next
 cycle's amplitude is not an outlier of the calibration relation: its
 residual from the ordinary-least-squares line of the calibration table is
 within one prediction standard error (so a 95% forecast interval of that
-relation should contain it).
+relation should contain it).  The criterion uses the calibration rows at the
+phase ``minimum`` only (like is regressed on like).
 """
 
 from __future__ import annotations
@@ -65,7 +66,7 @@ def qualify_seed(seed: int, params: StarParameters = StarParameters()) -> dict |
     sel = (ty >= y0) & (ty <= y1)
     rev_n = sign_changes_yr(ty[sel], h.north_gauss[sel])
     rev_s = sign_changes_yr(ty[sel], h.south_gauss[sel])
-    rows = calibration_rows(h, y0)
+    rows = calibration_rows(h, y0, lags_years=())  # the phase 'minimum': the precursor below is taken there
     last = [lm for lm in cycle_landmarks_truth(h) if abs(lm["minimum_time"] - m_b) < 1e-9][0]
     precursor, _ = precursor_gauss(h, m_b)
     res = calibration_residual(rows, precursor, last["maximum_value"])

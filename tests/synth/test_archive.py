@@ -90,7 +90,7 @@ def test_truth_products_have_the_agreed_layout(small_archive):
     assert set(truth["reversals"]) == {"north", "south"}
     assert (d / "sunspots.csv").read_text().splitlines()[0] == "time,sunspot_number"
     assert (d / "calibration.csv").read_text().splitlines()[0] == \
-        "cycle,precursor,amplitude,precursor_error,amplitude_error"
+        "cycle,precursor,amplitude,precursor_error,amplitude_error,phase,scale"
     caps = _rows(d / "truth_caps.csv")
     assert list(caps[0]) == ["time", "decimal_year", "north_br_gauss", "south_br_gauss", "dipole_br_gauss"]
     # dipole proxy (north - south) / 2 (DESIGN.md)
@@ -131,3 +131,61 @@ def test_frame_times_and_names():
 def test_settings_validation_names_argument(kw, match):
     with pytest.raises(ValueError, match=match):
         ArchiveSettings(**kw)
+
+
+def test_calibration_csv_reads_back_with_its_phases_and_scale(small_archive):
+    # the archive's calibration.csv through the pipeline's own reader (pipeline.regression): every row
+    # usable, the phases minimum and reversal+2..6 with the same cycles each, one declared scale (the
+    # truth's), and the values as written (regression only)
+    from pipeline.regression import read_calibration_csv
+    from pipeline.synth.star import star_history
+    from pipeline.synth.truth import TRUTH_SCALE, calibration_rows
+    from pipeline.timeutil import decimal_year
+
+    d, s, res = small_archive
+    table = read_calibration_csv(d / "calibration.csv")
+    assert table.problems == [] and table.notes == []
+    phases = ["minimum", "reversal+2", "reversal+3", "reversal+4", "reversal+5", "reversal+6"]
+    counts = table.phase_counts()
+    assert list(counts) == phases and counts["minimum"] >= 20 and set(counts.values()) == {counts["minimum"]}
+    assert set(table.scale) == {TRUTH_SCALE}
+    rows = calibration_rows(star_history(s.seed), decimal_year(np.datetime64(s.start)))
+    assert len(rows) == table.n_cycles
+    assert np.allclose(table.precursor, [r["precursor"] for r in rows], atol=5e-5)
+    assert np.allclose(table.amplitude, [r["amplitude"] for r in rows], atol=5e-3)
+    assert list(table.phase) == [r["phase"] for r in rows]
+
+
+def test_calibration_csv_keeps_a_tiny_error_positive():
+    # an error below 0.00005 G would round to 0.0000, which the calibration reader refuses as not
+    # positive: it is written with two significant digits instead; an unknown error is blank
+    from pipeline.synth.archive import calibration_csv_text
+
+    row = dict(cycle=1, precursor=2.0, amplitude=100.0, precursor_error=3.2e-6, amplitude_error=float("nan"),
+               phase="minimum", scale="s")
+    line = calibration_csv_text([row]).splitlines()[1]
+    assert line == "1,2.0000,100.00,3.2e-06,,minimum,s"
+
+
+@pytest.mark.parametrize("start, end, phases, reversal", [
+    # the span ends 0.13 yr after the minimum of 2044.21: its +-0.5 yr window is not complete, the windows
+    # 2..6 yr after the cycle's final dipole reversal (2036.04) are
+    ("2033-01-01", "2044-05-01", ["reversal+2", "reversal+3", "reversal+4", "reversal+5", "reversal+6"], True),
+    # the span starts after that reversal: unknown to its observer, so no reversal+L phase
+    ("2040-01-01", "2046-01-01", ["minimum"], False),
+])
+def test_truth_lists_the_phases_an_observer_of_the_span_could_measure(start, end, phases, reversal):
+    # closed-loop truth of the synthetic star (seed 1; minimum 2044.21, dipole reversal before it 2036.04,
+    # both from truth.calibration-style landmarks, regression only): precursor_at_phase has exactly the
+    # phases whose window lies inside the span, and the old keys keep their meaning
+    from pipeline.synth.archive import truth_summary
+    from pipeline.synth.star import star_history
+
+    truth = truth_summary(star_history(1), ArchiveSettings(start=start, end=end, seed=1))
+    assert truth["last_minimum_time"] == pytest.approx(2044.206, abs=1e-3)
+    assert list(truth["precursor_at_phase"]) == phases
+    assert (truth["final_dipole_reversal"] is not None) == reversal
+    if reversal:
+        assert truth["final_dipole_reversal"] == pytest.approx(2036.04, abs=0.01)
+    assert truth["precursor_at_last_minimum"] is not None
+    assert truth["calibration_rows_by_phase"]["minimum"] == truth["calibration_cycles"]

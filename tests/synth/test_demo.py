@@ -106,3 +106,45 @@ def test_sunpy_opens_every_demo_file_with_the_generator_geometry(demo_settings):
             geom = geometry_for(ObservingSetup(size=demo_settings.size), obs)
             px = m.wcs.world_to_pixel(SkyCoord(0 * u.arcsec, 0 * u.arcsec, frame=m.coordinate_frame))
             assert np.allclose([float(px[0]), float(px[1])], disk_centre_pixel(geom), atol=0.01)
+
+
+def test_committed_calibration_and_truth_are_what_the_generator_writes_now(demo_settings):
+    # the documented command writes calibration.csv and truth.json through these two functions from the
+    # star of its seed; the committed files must be exactly that (regression only): a change of the truth
+    # definitions (phases, windows, scale) that is not regenerated fails here
+    from pipeline.synth.archive import calibration_csv_text, truth_json_text, truth_summary
+    from pipeline.synth.star import star_history
+    from pipeline.synth.truth import calibration_rows
+    from pipeline.timeutil import decimal_year
+
+    history = star_history(demo_settings.seed)
+    rows = calibration_rows(history, decimal_year(np.datetime64(demo_settings.start)))
+    assert (DEMO / "calibration.csv").read_text(encoding="utf-8") == calibration_csv_text(rows)
+    assert (DEMO / "truth.json").read_text(encoding="utf-8") == truth_json_text(truth_summary(history, demo_settings))
+
+
+def test_demo_truth_gives_the_precursor_of_the_last_cycle_at_every_phase():
+    # closed-loop truth of the synthetic star: truth.json's per-phase precursors of the last cycle (33) are
+    # the mean |(N - S)/2| of truth_caps.csv (the true whole-cap means of the span, 5-day steps) within
+    # +-0.5 yr of the minimum and of final_dipole_reversal + L, L = 2..6.  The dipole reversal is a zero
+    # crossing of that series and lies between the two poles' final reversals: at the first pole's zero
+    # (N - S)/2 has the old sign, at the second's the new one, so it crosses in between (intermediate value
+    # theorem).  Computed here from the CSV alone; its 5-decimal rounding bounds the agreement (5e-6 G).
+    import csv
+
+    truth = json.loads((DEMO / "truth.json").read_text())
+    with open(DEMO / "truth_caps.csv", newline="") as fh:
+        caps = list(csv.DictReader(fh))
+    t = np.array([float(c["decimal_year"]) for c in caps])
+    dipole = np.array([float(c["dipole_br_gauss"]) for c in caps])
+    rev = truth["final_dipole_reversal"]
+    poles = sorted(truth["final_reversals"].values())
+    assert poles[0] <= rev <= poles[1]
+    assert np.sign(dipole[t < rev - 0.05][-1]) == -np.sign(dipole[t > rev + 0.05][0])
+    centres = {"minimum": truth["last_minimum_time"], **{f"reversal+{k}": rev + k for k in (2, 3, 4, 5, 6)}}
+    assert list(truth["precursor_at_phase"]) == list(centres)
+    for phase, centre in centres.items():
+        sel = np.abs(t - centre) <= 0.5
+        assert truth["precursor_at_phase"][phase] == pytest.approx(np.abs(dipole[sel]).mean(), abs=5e-6), phase
+        assert truth["precursor_window_centre"][phase] == pytest.approx(centre, abs=1e-9)
+    assert truth["precursor_at_phase"]["minimum"] == truth["precursor_at_last_minimum"]
