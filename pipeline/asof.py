@@ -29,8 +29,10 @@ hidden latitude bins later frames may fill differently.
 
 Target cycle
 ------------
-``target_cycle`` is the ordinal of the predicted cycle in the sunspot series:
-cycle k begins at the k-th cycle minimum found there (as of the date).  The
+``target_cycle`` is the number of the predicted cycle in the sunspot series:
+cycle k begins at the k-th cycle minimum found there (as of the date), or at
+the (k - n + 1)-th when the first minimum begins cycle n
+(``first_cycle_number``).  The
 precursor at a minimum predicts the cycle that minimum begins; a precursor
 taken after a final reversal predicts the cycle that begins at the next
 minimum after it.  The numbering follows the sunspot file given (a file that
@@ -520,18 +522,19 @@ def _newest_sample(time_years, north, south) -> float | None:
     return float(t[ok].max()) if ok.any() else None
 
 
-def _target_cycle(cycles, choice: PhaseChoice, reversal_time) -> int | None:
-    """Ordinal of the predicted cycle: 1 + the landmark minima before the cycle's start (module docstring)."""
+def _target_cycle(cycles, choice: PhaseChoice, reversal_time, first: int = 1) -> int | None:
+    """Number of the predicted cycle: ``first`` + the landmark minima before the cycle's start (module docstring)."""
     minima = np.array([c["minimum_time"] for c in cycles], dtype=np.float64)
     if choice.phase == "minimum":
         half_month = 1.0 / 24.0
-        return 1 + int(np.sum(minima < choice.center_time - half_month))
+        return first + int(np.sum(minima < choice.center_time - half_month))
     if reversal_time is not None:
-        return 1 + int(np.sum(minima < reversal_time))
+        return first + int(np.sum(minima < reversal_time))
     return None
 
 
-def forecast_inputs(source, sunspots, config=None, *, phase=None, lags_years=None, as_of=None) -> ForecastInputs:
+def forecast_inputs(source, sunspots, config=None, *, phase=None, lags_years=None, as_of=None,
+                    first_cycle_number: int = 1) -> ForecastInputs:
     """The state of the forecast as of a date, from frame records or a series table.
 
     Parameters
@@ -552,6 +555,10 @@ def forecast_inputs(source, sunspots, config=None, *, phase=None, lags_years=Non
     as_of : str, date, datetime64 or float, optional
         Use only what was known before this date; default
         ``config.forecast.as_of`` (None: everything).
+    first_cycle_number : int
+        The number of the cycle that begins at the first minimum of the
+        sunspot series (default 1: ordinals of the file); ``target_cycle``
+        counts on from it.
 
     Returns
     -------
@@ -588,14 +595,15 @@ def forecast_inputs(source, sunspots, config=None, *, phase=None, lags_years=Non
 
     ss, rs = section("series", SeriesSettings), section("reversals", ReversalSettings)
     cs, fs = section("cycles", CycleSettings), section("forecast", ForecastSettings)
-    requested = check_phase_request("--phase" if phase is not None else "forecast.phase",
+    requested = check_phase_request("phase" if phase is not None else "forecast.phase",
                                     phase if phase is not None else fs.phase)
-    lags = check_lags_years("forecast.lags_years",
+    lags = check_lags_years("lags_years" if lags_years is not None else "forecast.lags_years",
                             lags_years if lags_years is not None else fs.lags_years)
     try:
         cut = as_of_instant(as_of if as_of is not None else fs.as_of)
     except ValueError as exc:
-        raise ConfigError(f"{'--as-of' if as_of is not None else 'forecast.as_of'}: {exc}") from None
+        name = "as_of" if as_of is not None else "forecast.as_of"
+        raise ConfigError(str(exc).replace("as_of:", f"{name}:", 1)) from None
     smoother = ss.smoother
     notes: list[str] = []
     if isinstance(source, SeriesTable):
@@ -662,7 +670,7 @@ def forecast_inputs(source, sunspots, config=None, *, phase=None, lags_years=Non
         source=kind, series=series, final_reversal=final, reversal_provisional=reversal_provisional,
         cycles=cycles, current_minimum=minimum, choice=choice, precursor=item,
         minimum_time=min_time, minimum_status=min_status,
-        target_cycle=_target_cycle(cycles, choice, rev),
+        target_cycle=_target_cycle(cycles, choice, rev, int(first_cycle_number)),
         unavailable=unavailable, provisional_reasons=tuple(provisional), notes=tuple(notes), scale=scale,
         frames_used=frames, sunspot_input=sunspot_input)
 

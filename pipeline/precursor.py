@@ -315,9 +315,10 @@ def _final_reversal_time(result):
 
 
 def precursor_for_forecast(series, cycles, settings, reversal_settings=None, smoother=None) -> dict:
-    """The precursor of the coming cycle from a PolarSeries and the cycle landmarks.
+    """The precursor of the coming cycle from a PolarSeries and the cycle landmarks (before phases).
 
-    At the last cycle minimum when the polar series covers its window; when
+    Superseded by :func:`pipeline.asof.forecast_inputs` (phase-matched, as of a
+    date); kept for callers of the earlier route.  At the last cycle minimum when the polar series covers its window; when
     the final polarity reversal of the dipole lies after that minimum (the next
     minimum still ahead), at ``settings.lag_years`` after the reversal, or from
     the newest full window (Kumar et al. 2021, arXiv:2101.05013: usable from

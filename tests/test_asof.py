@@ -176,6 +176,11 @@ def test_auto_takes_the_confirmed_minimum_after_the_reversal(records):
     p = state.precursor
     assert abs(p["precursor_gauss"] - truth) < 3 * p["precursor_error_gauss"] + 0.02
     assert d["provisional"] is False and d["forecast_unavailable"] is None
+    # numbered from another first cycle (the sunspot file starts at cycle 30 of some record)
+    assert forecast_inputs(records, make_sunspots(), as_of="2042-01-01", first_cycle_number=30).target_cycle == 31
+    # [forecast] as_of is the default cut-off
+    same = forecast_inputs(records, make_sunspots(), load_config(None, forecast={"as_of": "2042-01-01"}))
+    assert _canonical(same.to_dict()) == _canonical(d)
 
 
 def test_auto_takes_the_largest_complete_lag_while_the_minimum_is_pending(records):

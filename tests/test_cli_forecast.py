@@ -277,6 +277,9 @@ def test_series_route_as_of_keys_and_causality(tmp_path, capsys):
                  "--config", str(config), "--format", "text"]) == 0
     out = capsys.readouterr().out
     assert "cycle 2 amplitude:" in out and "at phase minimum" in out and "(confirmed)" in out
+    assert main(["forecast", "--calibration", str(cal), "--series", str(long_series), "--sunspots", str(long_ssn),
+                 "--as-of", "2036-04"]) == 2
+    assert capsys.readouterr().err == "polecast forecast: --as-of: got '2036-04'; expected an ISO date YYYY-MM-DD\n"
 
 
 def test_no_forecast_exits_3_with_one_line(tmp_path, capsys):

@@ -122,6 +122,17 @@ def write_text(doc: dict, stream=None) -> None:
     stream.write(f"caution: {doc['cautions']}\n")
 
 
+def _check_as_of_option(text, prog):
+    """None, or the one-line usage error of a bad ``--as-of``."""
+    from pipeline.asof import as_of_instant
+
+    try:
+        as_of_instant(text)
+    except ValueError:
+        return f"{prog}: --as-of: got {text!r}; expected an ISO date YYYY-MM-DD"
+    return None
+
+
 def _given_state(args, settings, phase, prog):
     """The state keys of a given precursor, or an error line."""
     from pipeline.asof import as_of_instant
@@ -221,6 +232,8 @@ def run(args) -> int:
     settings = config.forecast
     prog = "polecast forecast"
     phase, err = _requested_phase(args, config, prog)
+    if err is None and args.as_of is not None:
+        err = _check_as_of_option(args.as_of, prog)
     if err:
         print(err, file=sys.stderr)
         return EXIT_USAGE
