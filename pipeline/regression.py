@@ -1087,18 +1087,19 @@ def check_scale(table: CalibrationTable, scale_in_force: str | None, allow_misma
     shown = tuple(declared.values())
     in_force = None if scale_in_force is None or not normalise_scale(scale_in_force) else str(scale_in_force).strip()
     if len(declared) > 1:
-        message = (f"calibration table: its rows declare {len(declared)} different scales "
-                   f"({', '.join(map(repr, shown))}); one fit must regress like on like: keep the rows of one scale")
+        what = (f"calibration table: its rows declare {len(declared)} different scales "
+                f"({', '.join(map(repr, shown))})")
+        fix = "one fit must regress like on like: keep the rows of one scale"
     elif declared and in_force is not None and normalise_scale(in_force) not in declared:
-        message = (f"calibration table scale {shown[0]!r} differs from the scale in force {in_force!r}; "
-                   f"calibrate on precursors measured the same way, or allow the mismatch explicitly "
-                   f"(--allow-scale-mismatch)")
+        what = f"calibration table scale {shown[0]!r} differs from the scale in force {in_force!r}"
+        fix = ("calibrate on precursors measured the same way, or allow the mismatch explicitly "
+               "(--allow-scale-mismatch)")
     else:
         return None
     if not allow_mismatch:
-        raise ScaleMismatchError(message, table_scales=shown, scale_in_force=in_force)
-    return {"table_scales": list(shown), "scale_in_force": in_force,
-            "message": "scale mismatch allowed: " + message.split(";")[0]}
+        raise ScaleMismatchError(f"{what}; {fix}", table_scales=shown, scale_in_force=in_force)
+    # the scales themselves may hold ';', so the recorded message is built from its parts, never split
+    return {"table_scales": list(shown), "scale_in_force": in_force, "message": "scale mismatch allowed: " + what}
 
 
 def merge_tables(a: CalibrationTable, b: CalibrationTable, *, names: tuple = ("first table", "second table")

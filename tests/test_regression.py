@@ -793,3 +793,15 @@ def test_loo_widening_keeps_the_coverage_of_clean_tables():
         assert abs(got - level) <= _window(level), (level, got)
     assert np.all(cov >= own)  # widening only adds coverage
     assert 0.2 < widened / TRIALS < 0.7, widened / TRIALS  # it does fire on clean tables, not always
+
+
+def test_an_allowed_scale_mismatch_records_scales_that_hold_semicolons_whole():
+    """Scales are 'key=value; key=value' texts (describe_scale), so the recorded override names both
+    scales in full, not cut at their first ';' (project convention, no outside source)."""
+    table, _, _ = _phased_table()
+    kvm = select_phase(table, "minimum")
+    kvm = CalibrationTable(kvm.cycle, kvm.precursor, kvm.amplitude, scale=("instrument=none; cap_latitude_deg=60",)
+                           * len(kvm.cycle))
+    rec = check_scale(kvm, "instrument=KVM; cap_latitude_deg=60", allow_mismatch=True)
+    assert rec["message"] == ("scale mismatch allowed: calibration table scale 'instrument=none; cap_latitude_deg=60'"
+                              " differs from the scale in force 'instrument=KVM; cap_latitude_deg=60'")
