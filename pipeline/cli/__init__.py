@@ -26,8 +26,8 @@ EXIT_OK, EXIT_SKIPPED, EXIT_USAGE = 0, 1, 2
 EXIT_INTERRUPTED = 130
 
 #: sub-command modules, in the order of the data flow
-COMMANDS = ("measure", "synth", "ingest", "export", "series", "reversals", "cycles", "forecast",
-            "run", "report")
+COMMANDS = ("measure", "synth", "ingest", "export", "series", "reversals", "cycles", "forecast", "calibrate",
+            "hindcast", "run", "report")
 
 
 def build_parser() -> argparse.ArgumentParser:
