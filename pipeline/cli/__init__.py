@@ -6,7 +6,8 @@ callable ``(args) -> int`` returning the exit code.
 
 Exit codes shared by every sub-command: 0 success, 1 some input was skipped
 or a check failed (the output still says which), 2 usage or configuration
-error (one line on stderr), 130 interrupted by SIGINT (Ctrl-C; 128 + the
+error (one line on stderr), 3 no forecast (or no hindcast or calibration
+row) can be made yet from what is known (one-line reason), 130 interrupted by SIGINT (Ctrl-C; 128 + the
 signal number, the shells' convention): one line on stderr, no traceback,
 and whatever a command had committed (the store's finished records) is kept.
 """
@@ -19,9 +20,12 @@ import sys
 
 from pipeline import __version__
 
-__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE", "EXIT_INTERRUPTED"]
+__all__ = ["main", "build_parser", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE", "EXIT_NO_FORECAST",
+           "EXIT_INTERRUPTED"]
 
 EXIT_OK, EXIT_SKIPPED, EXIT_USAGE = 0, 1, 2
+#: no forecast, hindcast row or calibration row can be made yet (no reversal, no complete window, too few rows)
+EXIT_NO_FORECAST = 3
 #: SIGINT: 128 + 2 (common practice of POSIX shells, no source)
 EXIT_INTERRUPTED = 130
 

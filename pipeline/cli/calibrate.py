@@ -17,13 +17,11 @@ from __future__ import annotations
 
 import sys
 
-from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from pipeline.cli import EXIT_NO_FORECAST, EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
 
-__all__ = ["add_parser", "run", "load_source", "EXIT_NO_ROWS"]
+__all__ = ["add_parser", "run", "load_source", "EXIT_NO_FORECAST"]
 
-#: no row can be made (as ``polecast forecast`` exits 3 when no forecast can be made)
-EXIT_NO_ROWS = 3
 
 
 def add_parser(sub) -> None:
@@ -134,7 +132,7 @@ def run(args) -> int:
     if table.n_cycles == 0:
         print(f"{prog}: no calibration row at {phase}: no cycle with a known amplitude is covered by the polar "
               f"series at that phase", file=sys.stderr)
-        return EXIT_NO_ROWS
+        return EXIT_NO_FORECAST
     if other is not None:
         table = merge_tables(table, other, names=("archive", str(args.merge)))
         for reason in table.problems:

@@ -22,14 +22,12 @@ import datetime as _dt
 import json
 import sys
 
-from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from pipeline.cli import EXIT_NO_FORECAST, EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.config import load_config
 from pipeline.jsonio import finite_or_none
 
 __all__ = ["add_parser", "run", "write_text", "read_sunspots", "EXIT_NO_FORECAST"]
 
-#: exit code when no forecast can be made from what is known (documented; 2 stays "usage or configuration")
-EXIT_NO_FORECAST = 3
 
 
 def add_parser(sub) -> None:

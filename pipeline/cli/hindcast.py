@@ -28,13 +28,11 @@ import csv
 import json
 import sys
 
-from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from pipeline.cli import EXIT_NO_FORECAST, EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.cli.calibrate import add_source_arguments, load_source
 
-__all__ = ["add_parser", "run", "EXIT_NO_HINDCAST", "csv_columns"]
+__all__ = ["add_parser", "run", "EXIT_NO_FORECAST", "csv_columns"]
 
-#: no hindcast row can be made (as ``polecast forecast`` exits 3)
-EXIT_NO_HINDCAST = 3
 
 
 def add_parser(sub) -> None:
@@ -150,7 +148,7 @@ def run(args) -> int:
     if not result.rows:
         print(f"{prog}: no hindcast row can be made at {result.phase} "
               f"({len(result.skipped)} targets or dates tried; reasons above)", file=sys.stderr)
-        return EXIT_NO_HINDCAST
+        return EXIT_NO_FORECAST
     doc = finite_or_none(result.to_dict())
     if args.format == "json":
         json.dump(doc, sys.stdout, indent=1)
