@@ -4,10 +4,8 @@ from __future__ import annotations
 
 import csv
 import json
-import math
 import sys
 
-import numpy as np
 
 from pipeline.cli import EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
 from pipeline.cli.series import add_series_options, given_measure, load_records, series_overrides
@@ -40,30 +38,13 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def _parse_time(text: str):
-    try:
-        return float(text)
-    except ValueError:
-        pass
-    from pipeline.timeutil import decimal_year, to_datetime64
-
-    return float(decimal_year(to_datetime64(text)))
-
-
-def _parse_value(text: str) -> float:
-    text = text.strip()
-    if text == "" or text.lower() in ("nan", "na", "null", "none"):
-        return math.nan
-    return float(text)
-
-
 def read_series_csv(path):
-    """Read ``time, north_br_gauss, south_br_gauss`` rows.
+    """Read ``time, north_br_gauss, south_br_gauss`` rows (:func:`pipeline.asof.read_series_table`).
 
     Returns
     -------
     time_years, north_gauss, south_gauss : ndarray
-        Decimal years and gauss (NaN for empty cells).
+        Decimal years and gauss (NaN for empty cells), sorted by time.
     problems : list of str
         One line per unreadable row (the row is left out, the rest carry on).
 
@@ -72,27 +53,10 @@ def read_series_csv(path):
     ValueError
         When a required column is missing (names the columns).
     """
-    t, n, s, problems = [], [], [], []
-    with open(path, newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
-        cols = [c.strip() for c in (reader.fieldnames or [])]
-        missing = [c for c in SERIES_CSV_COLUMNS if c not in cols]
-        if missing:
-            raise ValueError(f"{path}: missing column(s) {', '.join(missing)}; the table needs columns "
-                             f"{', '.join(SERIES_CSV_COLUMNS)} (time as ISO date or decimal year)")
-        for line, row in enumerate(reader, start=2):
-            row = {(k or "").strip(): (v or "") for k, v in row.items()}
-            try:
-                ty = _parse_time(row["time"].strip())
-                nv, sv = _parse_value(row["north_br_gauss"]), _parse_value(row["south_br_gauss"])
-            except (ValueError, TypeError) as exc:
-                problems.append(f"{path} line {line}: unreadable row ({exc}); left out")
-                continue
-            if not math.isfinite(ty):
-                problems.append(f"{path} line {line}: time {row['time']!r} is not finite; left out")
-                continue
-            t.append(ty); n.append(nv); s.append(sv)
-    return np.array(t), np.array(n), np.array(s), problems
+    from pipeline.asof import read_series_table
+
+    table = read_series_table(path)
+    return table.time_decimal_year, table.north_br_gauss, table.south_br_gauss, list(table.problems)
 
 
 def _text_block(name, res: dict, indent="") -> list[str]:
