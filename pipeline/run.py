@@ -4,7 +4,23 @@
 call.  It is incremental because ingest is (files already in the store are not
 measured again) and idempotent: a run with no new data rewrites the same
 products and appends no forecast-history entry, because an entry is appended
-only when the date of the newest data used differs from the last entry's.
+only when the data date, the as-of date, the phase, the target cycle or the
+calibration file's digest differs from the last entry's.
+
+The forecast is the phase-matched one of :mod:`pipeline.asof` (the same
+computation as ``polecast forecast --store``): the store's records and the
+sunspot months as of ``[forecast] as_of`` (all of them by default), the phase
+of ``[forecast] phase`` (``auto``: the minimum once known, else the largest
+complete ``reversal+L``), and only the calibration rows of that phase.  The
+series, reversal and cycle products describe the whole archive.
+
+A run never aborts for want of a forecast.  When none can be made (no
+reversal or minimum yet, no complete window, too few calibration rows of the
+phase) every other product and the report are written, ``forecast.json``
+holds the state with ``forecast_unavailable`` (the one-line reason),
+``summary.json`` has ``"forecast": null`` and ``"forecast_unavailable"``, no
+history entry is appended and the exit code is 3 (:data:`EXIT_NO_FORECAST`;
+2 stays "usage or configuration error").
 
 Products (all in ``run.products_dir``):
 
@@ -12,11 +28,13 @@ Products (all in ``run.products_dir``):
 ``latitude_time.nc``     longitude-averaged Br per latitude bin and rotation
 ``reversals.json``       the ``polecast reversals`` object (plus ``bands``)
 ``cycles.json``          the ``polecast cycles`` object
-``forecast.json``        the ``polecast forecast`` object
+``forecast.json``        the ``polecast forecast`` object (or the state and why there is no forecast)
 ``forecast_history.jsonl`` append-only history (unless ``run.history`` says elsewhere)
 ``calibration.csv``      a copy of the calibration table used
 ``config.json``          the configuration used
-``summary.json``         reversals, forecast, truth (demo), ingest summary, cautions
+``summary.json``         reversals, forecast (or null and the reason), how the precursor was taken,
+                         sunspot input (declared sunspot-number version), calibration digest and scale,
+                         truth (demo), ingest summary, cautions
 ``report/index.html``    the self-contained report and its figures
 
 One run at a time per products directory: the whole run holds an exclusive
@@ -44,12 +62,13 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.cli.forecast import EXIT_NO_FORECAST
 from pipeline.config import ConfigError
 from pipeline.jsonio import atomic_output, finite_or_none, write_json
 from pipeline.regression import CAUTIONS
 
-__all__ = ["RunSettings", "RunResult", "RunLockedError", "RUN_LOCK_NAME", "run_lock", "run_pipeline",
-           "find_demo_data", "find_demo_config"]
+__all__ = ["RunSettings", "RunResult", "RunLockedError", "RUN_LOCK_NAME", "EXIT_NO_FORECAST", "run_lock",
+           "run_pipeline", "find_demo_data", "find_demo_config"]
 
 #: the lock file of a run, inside the products directory
 RUN_LOCK_NAME = ".polecast-run.lock"
@@ -86,6 +105,11 @@ class RunSettings:
         Build the HTML report.
     remeasure : bool
         Measure again files measured with another configuration.
+    allow_scale_mismatch : bool
+        Forecast although the calibration's declared scale differs from the
+        store's measurement definition (the forecast records the override);
+        otherwise that is a configuration error (exit 2, every other product
+        written).
     """
 
     archive: tuple = ()
@@ -98,6 +122,7 @@ class RunSettings:
     truth: str = ""
     report: bool = True
     remeasure: bool = False
+    allow_scale_mismatch: bool = False
 
     def __post_init__(self):
         arch = (self.archive,) if isinstance(self.archive, str) else self.archive
@@ -109,7 +134,7 @@ class RunSettings:
                 raise ConfigError(f"run.{name}: got {getattr(self, name)!r}; expected a string (a path)")
         if self.scheduler and not self.scheduler.startswith(("tcp://", "tls://", "inproc://")):
             raise ConfigError(f"run.scheduler: got {self.scheduler!r}; expected tcp://HOST:PORT or empty")
-        for name in ("report", "remeasure"):
+        for name in ("report", "remeasure", "allow_scale_mismatch"):
             if not isinstance(getattr(self, name), bool):
                 raise ConfigError(f"run.{name}: got {getattr(self, name)!r}; expected true or false")
 
@@ -209,13 +234,37 @@ def _copy_file(src: Path, dst: Path) -> None:
         shutil.copyfile(src, tmp)
 
 
-def _last_history_date(path: Path) -> str | None:
-    from pipeline.history import read_history
+def _read_inputs(rs: RunSettings, cycle_settings):
+    """The sunspot series and the calibration table, read before anything is created.
 
-    if not path.exists():
-        return None
-    entries, _problems = read_history(path)
-    return entries[-1].get("data_date") if entries else None
+    Returns
+    -------
+    (pipeline.cycles.MonthlySeries, pipeline.regression.CalibrationTable, list of str)
+        The last item: the fallbacks to say once (a detected sunspot layout).
+
+    Raises
+    ------
+    ConfigError
+        A file that cannot be read or parsed, naming the ``[run]`` key.
+    """
+    from pipeline.cycles import read_sunspot_file
+    from pipeline.regression import read_calibration_csv
+
+    sunspots = _require(rs.sunspots, "sunspots")      # configuration errors first: nothing is created for them
+    calibration = _require(rs.calibration, "calibration")
+    try:
+        months = read_sunspot_file(sunspots, cycle_settings.sunspot_format)
+    except ValueError as exc:
+        raise ConfigError(f"run.sunspots: {exc}") from None
+    try:
+        table = read_calibration_csv(calibration)
+    except ValueError as exc:
+        raise ConfigError(f"run.calibration: {exc}") from None
+    notes = []
+    if months.format_source == "detected":
+        notes.append(f"note: sunspot file {sunspots}: format not declared; read as {months.format} (declare it "
+                     f"with [cycles] sunspot_format)")
+    return months, table, notes
 
 
 def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
@@ -234,11 +283,20 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     Returns
     -------
     RunResult
+        ``exit_code`` 0 ok, 1 new files were skipped, 2 the calibration's
+        declared scale differs from the store's (every product but the
+        forecast is written), 3 (:data:`EXIT_NO_FORECAST`) no forecast can be
+        made from what is known: no reversal or minimum yet, no complete
+        window, too few calibration rows of the phase.  With 2 or 3 the
+        series, reversals, cycles, summary (``"forecast": null`` and
+        ``"forecast_unavailable"``: the one-line reason) and report are
+        written all the same; 3 wins over 1 (the ingest line says what was
+        skipped).
 
     Raises
     ------
     ConfigError
-        A missing input file or a bad setting (named).
+        A missing or unreadable input file or a bad setting (named).
     RunLockedError
         Another run holds the products directory (:func:`run_lock`).
     pipeline.store.StoreSettingsError
@@ -250,33 +308,73 @@ def run_pipeline(config, *, progress: bool = False, on_skip=None) -> RunResult:
     rs: RunSettings = config.run
     if not rs.archive:
         raise ConfigError("run.archive: empty; list the folders, files or glob patterns of magnetograms")
-    _require(rs.sunspots, "sunspots")      # configuration errors first: nothing is created for them
-    _require(rs.calibration, "calibration")
+    months, table, notes = _read_inputs(rs, config.cycles)
     truth = _truth_summary(rs.truth)
     out = Path(rs.products_dir)
     out.mkdir(parents=True, exist_ok=True)
     with run_lock(out):
-        return _run_locked(config, truth, progress=progress, on_skip=on_skip)
+        return _run_locked(config, truth, months, table, notes, progress=progress, on_skip=on_skip)
 
 
-def _run_locked(config, truth: dict | None, *, progress: bool, on_skip) -> RunResult:
+def _history_key(entry: dict) -> tuple:
+    """What makes a history entry new: the data used, the as-of date, the phase, the target and the calibration."""
+    return tuple(entry.get(k) for k in ("data_date", "as_of", "phase", "target_cycle", "calibration_digest"))
+
+
+def _last_history_key(path: Path) -> tuple | None:
+    from pipeline.history import read_history
+
+    if not path.exists():
+        return None
+    entries, _problems = read_history(path)
+    return _history_key(entries[-1]) if entries else None
+
+
+def _forecast_products(inputs, table, config, calibration: Path) -> tuple[dict, dict | None, str | None, int]:
+    """``(forecast.json object, forecast or None, reason or None, exit code)`` of an as-of state and a table.
+
+    The exit code is 0 with a forecast, :data:`EXIT_NO_FORECAST` when none
+    can be made (:class:`pipeline.asof.NoForecastError`: no precursor, too few
+    calibration rows of the phase), 2 when the table's declared scale differs
+    from the store's (:class:`pipeline.regression.ScaleMismatchError`, a
+    configuration error unless ``run.allow_scale_mismatch``).
+    """
+    from pipeline.asof import NoForecastError, forecast_document
+    from pipeline.history import declared_calibration_scale
+    from pipeline.regression import ScaleMismatchError
+
+    calib = {"calibration": str(calibration), "calibration_scale": declared_calibration_scale(
+        table, inputs.choice.phase) if inputs.choice.phase else None}
+    try:
+        doc = forecast_document(inputs, table, config.forecast, allow_scale_mismatch=config.run.allow_scale_mismatch)
+    except (NoForecastError, ScaleMismatchError) as exc:
+        reason = " ".join(str(exc).split())
+        state = inputs.to_dict()
+        state.update(forecast_unavailable=reason, notes=list(inputs.choice.notes) + list(inputs.notes),
+                     skipped_rows=list(table.problems), cautions=CAUTIONS, **calib)
+        code = EXIT_NO_FORECAST if isinstance(exc, NoForecastError) else 2
+        return finite_or_none(state), None, reason, code
+    doc.update(calib)
+    doc = finite_or_none(doc)
+    return doc, doc, None, 0
+
+
+def _run_locked(config, truth: dict | None, months, table, notes: list, *, progress: bool, on_skip) -> RunResult:
     """The stages of :func:`run_pipeline`, with the run lock held."""
     from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
+    from pipeline.asof import forecast_inputs
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
-    from pipeline.precursor import precursor_for_forecast
-    from pipeline.cycles import read_monthly_csv
     from pipeline.history import append_history, history_entry
     from pipeline.ncio import write_netcdf
-    from pipeline.regression import forecast_amplitude, read_calibration_csv
     from pipeline.reversal import band_reversals, series_reversals
-    from pipeline.store import check_measure_settings, open_store
+    from pipeline.store import check_measure_settings, file_digest, open_store
 
     rs: RunSettings = config.run
-    sunspots, calibration = Path(rs.sunspots), Path(rs.calibration)
+    calibration = Path(rs.calibration)
     out = Path(rs.products_dir)
     Path(rs.store).parent.mkdir(parents=True, exist_ok=True)
-    messages: list[str] = []
+    messages: list[str] = list(notes)
 
     # 1. ingest (incremental)
     with open_store(rs.store, "a") as store:
@@ -289,7 +387,7 @@ def _run_locked(config, truth: dict | None, *, progress: bool, on_skip) -> RunRe
     if not records:
         raise ConfigError(f"run.archive: no file under {', '.join(rs.archive)} could be measured")
 
-    # 2. series and the latitude-time diagram
+    # 2. series and the latitude-time diagram (all the data: the products describe the whole archive)
     series = polar_series(records, config.series)
     diagram = latitude_time_diagram(records, config.series)
     write_netcdf(series, out / "series.nc")
@@ -304,41 +402,44 @@ def _run_locked(config, truth: dict | None, *, progress: bool, on_skip) -> RunRe
     reversals["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
     write_json(out / "reversals.json", reversals)
 
-    # 4. cycle landmarks
-    cycles_doc = landmarks_document(read_monthly_csv(sunspots), config.cycles)
+    # 4. cycle landmarks (all the sunspot months)
+    messages += [f"sunspot file {rs.sunspots}: {p}" for p in months.problems]
+    cycles_doc = landmarks_document(months, config.cycles)
     cycles = cycles_doc["cycles"]
     write_json(out / "cycles.json", cycles_doc)
 
-    # 5. precursor and forecast
-    table = read_calibration_csv(calibration)
+    # 5. the state as of [forecast] as_of, the precursor at its phase and the phase-matched forecast
+    #    (pipeline.asof: the same computation as `polecast forecast --store`); no forecast is not an abort
     messages += [f"calibration {calibration}: {p}" for p in table.problems]
-    try:
-        item = precursor_for_forecast(series, cycles, config.forecast, config.reversals, smoother)
-    except ValueError as exc:
-        raise ValueError(f"cannot take the precursor from the measured series: {exc}") from None
-    result = forecast_amplitude(table, item["precursor_gauss"], config.forecast,
-                                precursor_error=item["precursor_error_gauss"])
-    forecast = result.to_dict()
-    forecast["warnings"] = list(forecast.get("warnings", [])) + list(item.get("notes", []) or [])
-    forecast.update(data_date=item["data_date"], precursor_source="store", precursor_detail=item,
-                    skipped_rows=list(table.problems))
-    forecast = finite_or_none(forecast)
-    write_json(out / "forecast.json", forecast)
+    inputs = forecast_inputs(records, months, config)
+    messages += [f"note: {n}" for n in list(inputs.choice.notes) + list(inputs.notes)]
+    doc, forecast, unavailable, forecast_code = _forecast_products(inputs, table, config, calibration)
+    write_json(out / "forecast.json", doc)
     _copy_file(calibration, out / "calibration.csv")
 
-    # 6. history: one entry per new data date, never rewritten
+    # 6. history: one entry per new forecast (data date, as-of date, phase, target, calibration), never rewritten
     history = Path(rs.history) if rs.history else out / "forecast_history.jsonl"
     appended = False
-    if _last_history_date(history) != item["data_date"]:
-        append_history(history, history_entry(forecast, item["data_date"], calibration=str(calibration),
-                                              precursor_source="store"))
-        appended = True
+    if forecast is not None:
+        entry = history_entry(forecast, forecast["data_date"], calibration=str(calibration),
+                              precursor_source=forecast["precursor_source"],
+                              calibration_digest=file_digest(calibration),
+                              calibration_scale=forecast["calibration_scale"])
+        if _last_history_key(history) != _history_key(entry):
+            append_history(history, entry)
+            appended = True
 
     # 7. summary (+ truth for a synthetic archive) and the report
     write_json(out / "config.json", config.to_dict())
+    state = inputs.to_dict()
     summ = {
         "reversals": {k: reversals[k] for k in ("north", "south", "dipole")},
         "forecast": forecast,
+        "forecast_unavailable": unavailable,
+        "precursor": {k: doc.get(k) for k in _STATE_KEYS},
+        "sunspot_input": dict(state["sunspot_input"], file=str(rs.sunspots)),
+        "calibration": {"path": str(calibration), "digest": file_digest(calibration),
+                        "scale": doc.get("calibration_scale")},
         "cycles": cycles,
         "ingest": {"line": summary.line(), "new_ok": summary.new_ok, "new_skipped": summary.new_skipped,
                    "known": summary.known, "skip_reasons": dict(summary.skip_reasons)},
@@ -348,13 +449,21 @@ def _run_locked(config, truth: dict | None, *, progress: bool, on_skip) -> RunRe
     }
     if truth is not None:
         summ["truth"] = truth
+    summ = finite_or_none(summ)
     write_json(out / "summary.json", summ)
     report = None
     if rs.report:
         from pipeline.report import build_report
 
         report = build_report(rs.store, out / "report", products_dir=out, settings=config.report, config=config)
-    return RunResult(summary.exit_code, summary.line(), finite_or_none(summ), out, report, messages)
+    exit_code = forecast_code if forecast_code else summary.exit_code
+    return RunResult(exit_code, summary.line(), summ, out, report, messages)
+
+
+#: the keys of summary.json's ``precursor`` object: when and how the precursor was (or could not be) taken
+_STATE_KEYS = ("phase", "lag_years", "phase_requested", "phase_notes", "minimum_time", "minimum_status",
+               "reversal_time", "reversal_provisional", "target_cycle", "data_date", "as_of", "provisional",
+               "provisional_reasons", "precursor_source", "precursor_detail", "current_minimum")
 
 
 def find_demo_data(explicit: str | None = None) -> Path:

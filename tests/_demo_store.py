@@ -75,18 +75,64 @@ def seed_store(demo_store: Path, store: Path, paths) -> Path:
 
 
 def write_run_config(path: Path, archive: Path, out: Path, *, store: Path | None = None, extra: str = "",
-                     report: bool = False) -> Path:
-    """A ``polecast run`` TOML on ``archive`` with the demo's sunspots, calibration and analysis sections."""
+                     report: bool = False, sunspots: Path | None = None, calibration: Path | None = None,
+                     forecast: str = "") -> Path:
+    """A ``polecast run`` TOML on ``archive`` with the demo's sunspots, calibration and analysis sections.
+
+    ``extra`` goes into ``[run]``; ``forecast`` (TOML lines such as ``as_of = "2054-01-01"``) is appended to
+    the demo's ``[forecast]`` section.  ``allow_scale_mismatch`` is on, as in ``configs/demo.toml`` (the
+    demo's calibration declares the synthetic truth's scale).
+    """
     store = store or out / "store.sqlite"
+    sections = demo_sections_toml()
+    if forecast:
+        head, tail = sections.split("[forecast]", 1)
+        if "\n[" in tail:
+            raise ValueError("write_run_config: [forecast] is expected to be the last section of demo.toml")
+        sections = head + "[forecast]" + tail.rstrip("\n") + "\n" + forecast + "\n"
     path.write_text(f"""
 [run]
 archive = ["{archive}"]
-sunspots = "{DEMO / 'sunspots.csv'}"
-calibration = "{DEMO / 'calibration.csv'}"
+sunspots = "{sunspots or DEMO / 'sunspots.csv'}"
+calibration = "{calibration or DEMO / 'calibration.csv'}"
 store = "{store}"
 products_dir = "{out}"
 report = {'true' if report else 'false'}
+allow_scale_mismatch = true
 {extra}
-{demo_sections_toml()}
+{sections}
 """, encoding="utf-8")
+    return path
+
+
+def write_calibration(path: Path, phases) -> Path:
+    """The demo's calibration table keeping only the rows of ``phases`` (columns kept as they are)."""
+    import csv
+
+    with open(DEMO / "calibration.csv", newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        if "phase" not in (reader.fieldnames or []):
+            raise ValueError("demo_fits/calibration.csv has no phase column; regenerate the demo (polecast synth)")
+        rows = [r for r in reader if r["phase"].strip() in set(phases)]
+        fields = reader.fieldnames
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.DictWriter(fh, fields, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+    return path
+
+
+def write_sunspots_before(path: Path, as_of_decimal_year: float) -> Path:
+    """The demo's sunspot file keeping only the months that ended before a date (decimal year)."""
+    import numpy as np
+
+    from pipeline.cycles import months_ended_before, read_sunspot_file
+
+    months = read_sunspot_file(DEMO / "sunspots.csv", "plain-csv")
+    keep = months_ended_before(months.time_decimal_year, as_of_decimal_year)
+    lines = (DEMO / "sunspots.csv").read_text(encoding="utf-8").splitlines()
+    if len(lines) - 1 != months.time_decimal_year.size:
+        raise ValueError("demo_fits/sunspots.csv: expected one row per month with a header")
+    path.write_text("\n".join([lines[0]] + [ln for ln, k in zip(lines[1:], keep) if k]) + "\n", encoding="utf-8")
+    assert int(np.sum(keep)) == len(path.read_text().splitlines()) - 1
     return path

@@ -21,6 +21,11 @@ STEP_YR = 0.09            # about 1.2 Carrington rotations between frames
 N_FRAMES = 28
 NORTH_REVERSAL_YR = 2032.2   # the synthetic north field changes sign here
 SOUTH_REVERSAL_YR = 2032.5
+#: history updates (data date, precursor, target cycle, phase): three for cycle 7 after its reversal, then two
+#: for cycle 8 once the minimum beginning it is known (invented; the figure must not join the two targets)
+HISTORY_UPDATES = (("2033-02-01", 1.2, 7, "reversal+2"), ("2033-03-01", 1.3, 7, "reversal+2"),
+                   ("2033-04-01", 1.45, 7, "reversal+3"), ("2033-05-01", 1.7, 8, "minimum"),
+                   ("2033-06-01", 1.5, 8, "minimum"))
 
 
 def _date(year: float) -> str:
@@ -105,9 +110,12 @@ def write_products(products, store):
     fc = forecast_amplitude(table, 1.5, config.forecast, precursor_error=0.1).to_dict()
     fc["data_date"] = "2033-06-01"
     (products / "forecast.json").write_text(json.dumps(fc))
-    for k, (date, x) in enumerate((("2033-04-01", 1.3), ("2033-05-01", 1.45), ("2033-06-01", 1.5))):
+    for date, x, target, phase in HISTORY_UPDATES:
         f = forecast_amplitude(table, x, config.forecast).to_dict()
-        append_history(products / "forecast_history.jsonl", history_entry(f, date, calibration="calibration.csv"))
+        f.update(target_cycle=target, phase=phase)
+        append_history(products / "forecast_history.jsonl",
+                       history_entry(f, date, calibration="calibration.csv", calibration_digest=None,
+                                     calibration_scale=None))
     (products / "config.json").write_text(json.dumps(config.to_dict(), default=list))
     summary = {"reversals": rev, "forecast": fc,
                "truth": {"reversals": {"north": NORTH_REVERSAL_YR, "south": SOUTH_REVERSAL_YR},

@@ -20,8 +20,8 @@ from pipeline.config import ConfigError, MeasureSettings
 from pipeline.report import (FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products,
                              render_report)
 from pipeline.report.html import table_html
-from tests._report_store import (HOSTILE_NAME, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR, build_store,
-                                 write_products)
+from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
+                                 build_store, write_products)
 
 #: PNG file signature, PNG specification (ISO/IEC 15948:2004 / W3C PNG 2nd ed., sec. 5.2)
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -241,17 +241,48 @@ def test_calibration_figure_line_and_bands_match_statsmodels_ols(built):
     assert (marker.lines[0].get_xdata()[0], marker.lines[0].get_ydata()[0]) == (fc["precursor"], fc["amplitude"])
 
 
-def test_history_figure_puts_each_update_at_its_data_date(built):
-    """One point per history entry at its data date (astropy decimalyear) and amplitude."""
+def test_history_figure_draws_one_line_per_target_cycle_each_update_at_its_data_date(built):
+    """Issue 10: the history figure never joins entries of different target cycles in one line.  Each target
+    of the history (tests/_report_store.py HISTORY_UPDATES: three updates for cycle 7, then two for cycle 8) is
+    its own line holding exactly its updates, at their data dates (astropy decimalyear, a reference library)
+    and amplitudes, with its 68 % and 95 % bands spanning the entries' intervals."""
     fig = built["rendered"].figures["history"]
     (ax,) = fig.axes
     assert "sunspot number" in ax.get_ylabel() and "decimal year" in ax.get_xlabel()
     entries = built["rendered"].products.history
-    line = _line(ax, "forecast amplitude")
-    dates = np.array([e["data_date"] for e in entries], dtype="datetime64[D]")
-    np.testing.assert_allclose(line.get_xdata(), _astropy_years(dates), atol=1e-6)
-    np.testing.assert_array_equal(line.get_ydata(), [e["amplitude"] for e in entries])
-    assert ax.get_title() == "Forecast history (3 updates)"
+    targets = sorted({e["target_cycle"] for e in entries})
+    assert targets == sorted({u[2] for u in HISTORY_UPDATES}) and len(targets) == 2
+    lines = [ln for ln in ax.get_lines() if (ln.get_gid() or "").startswith("history:target:")]
+    assert sorted(ln.get_gid() for ln in lines) == [f"history:target:{t}" for t in targets]
+    for target in targets:
+        mine = [e for e in entries if e["target_cycle"] == target]
+        (line,) = [ln for ln in lines if ln.get_gid() == f"history:target:{target}"]
+        dates = np.array([e["data_date"] for e in mine], dtype="datetime64[D]")
+        np.testing.assert_allclose(line.get_xdata(), _astropy_years(dates), atol=1e-6)
+        np.testing.assert_array_equal(line.get_ydata(), [e["amplitude"] for e in mine])
+        for level in ("68", "95"):
+            (band,) = [c for c in ax.collections if c.get_gid() == f"history:target:{target}:band{level}"]
+            ys = band.get_paths()[0].vertices[:, 1]
+            lo = min(e[f"interval_{level}"][0] for e in mine)
+            hi = max(e[f"interval_{level}"][1] for e in mine)
+            assert ys.min() == pytest.approx(lo, rel=1e-12) and ys.max() == pytest.approx(hi, rel=1e-12)
+    assert sum(len(ln.get_xdata()) for ln in lines) == len(entries) == len(HISTORY_UPDATES)
+    assert ax.get_title() == f"Forecast history ({len(entries)} updates; one line per target cycle)"
+
+
+def test_history_figure_keeps_entries_without_a_target_on_a_line_of_their_own(built):
+    """Entries written before target_cycle existed are one "target unknown" line, never joined to a known
+    target (regression only)."""
+    from pipeline.report.figures import forecast_history_figure
+
+    entries = [dict(e) for e in built["rendered"].products.history]
+    for e in entries[:2]:
+        e.pop("target_cycle")
+    (ax,) = forecast_history_figure(entries, ReportSettings()).axes
+    gids = sorted(ln.get_gid() for ln in ax.get_lines() if (ln.get_gid() or "").startswith("history:target:"))
+    assert gids == sorted({f"history:target:{e.get('target_cycle', 'unknown')}" for e in entries})
+    (unknown,) = [ln for ln in ax.get_lines() if ln.get_gid() == "history:target:unknown"]
+    assert list(unknown.get_ydata()) == [e["amplitude"] for e in entries[:2]]
 
 
 def test_diagnostics_figure_draws_b0_coverage_and_the_skipped_files(built):
@@ -567,4 +598,4 @@ def test_history_named_by_the_run_configuration_is_found(built, tmp_path):
     cfg.setdefault("run", {})["history"] = str(elsewhere)
     (products / "config.json").write_text(json.dumps(cfg))
     loaded = load_products(products)
-    assert [e["data_date"] for e in loaded.history] == ["2033-04-01", "2033-05-01", "2033-06-01"]
+    assert [e["data_date"] for e in loaded.history] == [u[0] for u in HISTORY_UPDATES]

@@ -38,7 +38,7 @@ from pipeline.regression import forecast_amplitude, read_calibration_csv
 from pipeline.run import RUN_LOCK_NAME, RunLockedError, run_lock, run_pipeline
 from pipeline.store import MeasuredFile, check_measure_settings, file_digest, open_store
 from tests._demo_store import (DEMO, DEMO_CONFIG, REPO, demo_files, demo_measure, link_archive, seed_store,
-                               write_run_config)
+                               write_calibration, write_run_config, write_sunspots_before)
 from tests._ingest_archive import committed_rows
 
 FIGURES = ("polar_series.png", "latitude_time.png", "calibration.png", "forecast_history.png", "diagnostics.png")
@@ -55,6 +55,11 @@ def _truth() -> dict:
 
 def _json(path: Path):
     return json.loads(path.read_text())
+
+
+def _without_notes(err: str) -> str:
+    """stderr without the ``polecast: note:`` lines (how the phase was chosen; said once, not an error)."""
+    return "\n".join(ln for ln in err.splitlines() if not ln.startswith("polecast: note: "))
 
 
 def _one_line(err: str) -> str:
@@ -101,7 +106,7 @@ def test_measured_visible_cap_precursor_matches_the_visible_truth(demo_run):
                     for r in records]
     config = load_config(DEMO_CONFIG)
     visible = dataclasses.replace(config.series, b0_method="visible")
-    minimum = _json(demo_run.out / "forecast.json")["precursor_detail"]["minimum_time"]
+    minimum = _json(demo_run.out / "forecast.json")["minimum_time"]
     kw = dict(kind=config.forecast.precursor_kind, window_years=config.forecast.window_years)
     measured = precursor_at(polar_series(records, visible), minimum, **kw)
     true = precursor_at(polar_series(true_records, visible), minimum, **kw)
@@ -121,7 +126,7 @@ def test_forecast_precursor_matches_the_whole_cap_truth_within_its_stated_error(
     fc = _json(demo_run.out / "forecast.json")
     truth = _truth()
     assert fc["precursor_detail"]["route"] == "minimum"
-    assert fc["precursor_detail"]["minimum_time"] == pytest.approx(truth["last_minimum_time"], abs=0.01)
+    assert fc["minimum_time"] == pytest.approx(truth["last_minimum_time"], abs=0.01)
     sigma = math.hypot(fc["precursor_error"], truth["precursor_at_last_minimum_error"])
     assert abs(fc["precursor"] - truth["precursor_at_last_minimum"]) <= THREE_SIGMA * sigma
 
@@ -170,8 +175,9 @@ def test_demo_prints_the_outcome_and_writes_every_product_whole(demo_run):
         assert ds.sizes["rotation"] > 200
     assert _json(out / "reversals.json")["north"]["final"] == summary["reversals"]["north"]["final"]
     assert _json(out / "cycles.json")["cycles"] == summary["cycles"]
-    # the data date is that of the rotation holding the newest frame (2057-11-01; regression only)
-    assert summary["forecast"] == fc and fc["data_date"] == "2057-11-02"
+    # the data date is that of the newest frame (demo_fits/: kvm_20571101_000000.fits)
+    newest = demo_files()[-1].name        # kvm_YYYYMMDD_HHMMSS.fits
+    assert summary["forecast"] == fc and fc["data_date"] == f"{newest[4:8]}-{newest[8:10]}-{newest[10:12]}"
     history = (out / "forecast_history.jsonl").read_text().splitlines()
     assert len(history) == 1 and json.loads(history[0])["amplitude"] == fc["amplitude"]
     assert (out / "calibration.csv").read_bytes() == (DEMO / "calibration.csv").read_bytes()
@@ -181,6 +187,32 @@ def test_demo_prints_the_outcome_and_writes_every_product_whole(demo_run):
     embedded = sorted(base64.b64decode(chunk.split('"', 1)[0]) for chunk in page.split(prefix)[1:])
     assert embedded == sorted((out / "report" / "figures" / n).read_bytes() for n in FIGURES)
     assert sorted(p.name for p in out.rglob("*.tmp")) == []
+
+
+def test_demo_forecasts_on_the_phase_matched_route(demo_run):
+    """Issue 10: the demo's precursor is taken at the phase the data stand at (the confirmed minimum of the
+    synthetic star, truth.json last_minimum_time) and regressed only on calibration rows of that phase (the
+    rows of demo_fits/calibration.csv whose phase column says so, counted here with the csv module); the state
+    says which minimum, its status and the target cycle (the second cycle of truth.json, counted from the
+    sunspot file's first minimum as pipeline.asof numbers them)."""
+    fc = _json(demo_run.out / "forecast.json")
+    truth = _truth()
+    with open(DEMO / "calibration.csv", newline="") as fh:
+        phases = [row["phase"] for row in csv.DictReader(fh)]
+    assert len(set(phases)) > 1                       # a table of several phases, as polecast synth writes it
+    assert fc["phase"] == "minimum" and fc["lag_years"] is None and fc["precursor_detail"]["route"] == "minimum"
+    assert fc["n_cycles"] == phases.count("minimum")
+    assert fc["minimum_status"] == "confirmed"
+    assert fc["minimum_time"] == pytest.approx(truth["last_minimum_time"], abs=0.01)
+    assert fc["target_cycle"] == len(truth["cycles"])
+    assert fc["reversal_time"] == pytest.approx(truth["final_dipole_reversal"], abs=0.25)
+    summary = _json(demo_run.out / "summary.json")
+    assert summary["forecast_unavailable"] is None
+    assert summary["precursor"]["phase"] == "minimum" and summary["precursor"]["minimum_status"] == "confirmed"
+    # the declared sunspot-number version and layout (configs/demo.toml [cycles]) are carried into the summary
+    assert summary["sunspot_input"]["sunspot_number_version"] == load_config(DEMO_CONFIG).cycles.sunspot_number_version
+    assert summary["sunspot_input"]["format_source"] == "declared"
+    assert "note: sunspot file" not in demo_run.stderr     # a declared layout is no fallback: nothing to say
 
 
 # -- polecast run: incremental, exit codes ------------------------------------------------------------------
@@ -213,7 +245,8 @@ def test_run_is_incremental_and_appends_one_history_entry_per_update(tmp_path, d
     assert main(["run", str(conf)]) == 0
     first = capsys.readouterr()
     assert first.out.splitlines()[0] == f"ingest: 0 new (0 ok, 0 skipped), {n} already known"
-    assert first.err == ""
+    # nothing skipped, nothing refused: at most a note on how the phase was chosen (the span holds no reversal)
+    assert all(ln.startswith("polecast: note: ") for ln in first.err.splitlines()), first.err
     history = out / "forecast_history.jsonl"
     assert len(history.read_text().splitlines()) == 1
     before = _products(out)
@@ -243,9 +276,133 @@ def test_run_exit_1_when_a_new_file_is_skipped(tmp_path, demo_run, capsys):
     assert main(["run", str(conf)]) == 1
     cap = capsys.readouterr()
     assert cap.out.splitlines()[0] == f"ingest: 1 new (0 ok, 1 skipped: 1 not a FITS file), {n} already known"
-    assert _one_line(cap.err).startswith(f"polecast: skipped {bad}: ")
+    assert _one_line(_without_notes(cap.err)).startswith(f"polecast: skipped {bad}: ")
     assert _json(out / "forecast.json")["data_date"] == _json(demo_run.out / "forecast.json")["data_date"]
     assert _json(out / "summary.json")["ingest"]["new_skipped"] == 1
+
+
+def _cut_run(tmp_path: Path, demo_run, first: str, last: str, **kw):
+    """A run of the demo frames named within [first, last] from a seeded store; (config, products, frames)."""
+    links = link_archive(tmp_path / "archive", demo_files(first, last))
+    store = seed_store(demo_run.store, tmp_path / "store.sqlite", links)
+    conf = write_run_config(tmp_path / "run.toml", tmp_path / "archive", tmp_path / "products", store=store, **kw)
+    return conf, tmp_path / "products", links
+
+
+def _stderr_reason(err: str) -> str:
+    """The one ``polecast: no forecast: ...`` line of stderr (notes may precede it; no traceback)."""
+    assert "Traceback" not in err
+    lines = [ln for ln in err.splitlines() if ln.startswith("polecast: no forecast: ")]
+    assert len(lines) == 1, err
+    return lines[0][len("polecast: no forecast: "):]
+
+
+@pytest.mark.parametrize("case", ["before the reversal", "window incomplete", "no calibration rows of the phase"])
+def test_run_without_a_forecast_writes_everything_and_exits_3(tmp_path, demo_run, capsys, case):
+    """Issue 10, never abort for want of a forecast: the series, reversals, cycles and summary are written,
+    summary.json has "forecast": null and the one-line reason, the ingest line is printed, no history entry
+    is made, and the exit code is 3 (pipeline.cli.forecast.EXIT_NO_FORECAST; 2 stays usage/configuration).
+
+    Cases on parts of the demo archive, against the synthetic star's truth (truth.json): frames of
+    2044-2045 end before its final dipole reversal (2047.66); frames of 2046 to mid-2049 end before the
+    reversal+2 window is complete (reversal + 2 + 0.5 yr = 2050.2, the window half-width of configs/demo.toml);
+    frames of 2046-2054 reach the reversal+6 window (ends 2054.2) but the calibration keeps only its
+    'minimum' rows (regression only for the wording)."""
+    truth = _truth()
+    if case == "before the reversal":
+        conf, out, links = _cut_run(tmp_path, demo_run, "kvm_2044", "kvm_2046")
+        want = "no dipole reversal"
+    elif case == "window incomplete":
+        conf, out, links = _cut_run(tmp_path, demo_run, "kvm_2046", "kvm_20496")
+        want = "has a complete window yet"
+    else:
+        tmp_path.mkdir(exist_ok=True)
+        cal = write_calibration(tmp_path / "calibration.csv", ["minimum"])
+        conf, out, links = _cut_run(tmp_path, demo_run, "kvm_2046", "kvm_2055", calibration=cal,
+                                    report=True)
+        want = "at phase 'reversal+6'"
+    assert main(["run", str(conf)]) == 3
+    cap = capsys.readouterr()
+    reason = _stderr_reason(cap.err)
+    assert want in reason
+    assert cap.out.splitlines()[0] == f"ingest: 0 new (0 ok, 0 skipped), {len(links)} already known"
+    assert f"no forecast: {reason}" in cap.out.splitlines()
+    summary = _json(out / "summary.json")
+    assert summary["forecast"] is None and summary["forecast_unavailable"] == reason
+    assert "\n" not in reason and summary["cautions"] and summary["frames"] == len(links)
+    for name in ("series.nc", "latitude_time.nc", "reversals.json", "cycles.json", "config.json"):
+        assert (out / name).is_file(), name
+    fc = _json(out / "forecast.json")
+    assert fc["forecast_unavailable"] == reason and "amplitude" not in fc and fc["cautions"]
+    assert not (out / "forecast_history.jsonl").exists()
+    if case == "no calibration rows of the phase":
+        # the phase is the largest configured lag whose window is complete: 6 (truth's reversal + 6 + 0.5 yr
+        # < the newest frame's time), and the state says so
+        assert summary["precursor"]["phase"] == fc["phase"] == "reversal+6" and fc["lag_years"] == 6.0
+        assert truth["final_dipole_reversal"] + 6.5 < 2055.0
+        assert fc["target_cycle"] == len(truth["cycles"])
+        page = (out / "report" / "index.html").read_text(encoding="utf-8")
+        assert "No forecast" in page and html_escape(reason) in page
+    else:
+        assert summary["precursor"]["phase"] is None
+
+
+def html_escape(text: str) -> str:
+    import html
+
+    return html.escape(text, quote=True)
+
+
+def test_history_entries_record_phase_minimum_target_and_the_calibration(tmp_path, demo_run, capsys):
+    """Issue 10: each history entry records the phase, the lag, the minimum used with its status, the target
+    cycle, the calibration file's digest and its declared scale.  Expected: the synthetic star's truth
+    (truth.json: last minimum, cycles, calibration_scale) and the file's BLAKE2b-256 digest computed here with
+    hashlib (RFC 7693).  A new calibration file is a new forecast: it appends an entry even with no new data."""
+    import hashlib
+
+    conf, out, _, _, _ = _seeded(tmp_path, demo_run)
+    assert main(["run", str(conf)]) == 0
+    capsys.readouterr()
+    truth = _truth()
+    (entry,) = [json.loads(line) for line in (out / "forecast_history.jsonl").read_text().splitlines()]
+    assert entry["phase"] == "minimum" and entry["lag_years"] is None
+    assert entry["minimum_time"] == pytest.approx(truth["last_minimum_time"], abs=0.01)
+    assert entry["minimum_status"] == "confirmed"
+    assert entry["target_cycle"] == len(truth["cycles"])
+    data = (DEMO / "calibration.csv").read_bytes()
+    assert entry["calibration_digest"] == hashlib.blake2b(data, digest_size=32).hexdigest()
+    assert entry["calibration_scale"] == truth["calibration_scale"]
+    assert entry["as_of"] is None and entry["amplitude"] == _json(out / "forecast.json")["amplitude"]
+
+    other = write_calibration(tmp_path / "minimum_only.csv", ["minimum"])
+    conf.write_text(conf.read_text().replace(str(DEMO / "calibration.csv"), str(other)))
+    assert main(["run", str(conf)]) == 0
+    capsys.readouterr()
+    entries = [json.loads(line) for line in (out / "forecast_history.jsonl").read_text().splitlines()]
+    assert len(entries) == 2 and entries[1]["data_date"] == entries[0]["data_date"]
+    assert entries[1]["calibration_digest"] == hashlib.blake2b(other.read_bytes(), digest_size=32).hexdigest()
+    assert entries[1]["amplitude"] == pytest.approx(entries[0]["amplitude"], rel=1e-12)  # the same minimum rows
+
+
+def test_as_of_run_forecasts_with_what_was_known_then(tmp_path, demo_run, capsys):
+    """Issue 10, [forecast] as_of: a run over the whole archive as of 2054-01-01 gives the forecast of a run
+    given only the frames and the sunspot months from before that date (the causality the issue asks for;
+    the two runs share nothing else).  Between the reversal and the minimum the phase is a reversal+L."""
+    as_of = "2054-01-01"
+    full, full_out, _ = _cut_run(tmp_path / "full", demo_run, "kvm_2046", "z", forecast=f'as_of = "{as_of}"')
+    before = write_sunspots_before((tmp_path / "cut").mkdir() or tmp_path / "cut" / "sunspots.csv", 2054.0)
+    cut, cut_out, _ = _cut_run(tmp_path / "cut", demo_run, "kvm_2046", "kvm_20531231", sunspots=before)
+    assert main(["run", str(full)]) == 0
+    assert main(["run", str(cut)]) == 0
+    capsys.readouterr()
+    a, b = _json(full_out / "forecast.json"), _json(cut_out / "forecast.json")
+    assert a["as_of"] == as_of and b["as_of"] is None
+    assert a["phase"].startswith("reversal+")
+    for key in ("phase", "lag_years", "minimum_time", "minimum_status", "reversal_time", "target_cycle", "data_date",
+                "precursor", "precursor_error", "amplitude", "interval_68", "interval_95", "n_cycles"):
+        assert a[key] == b[key], key
+    # the products of the whole archive still describe all of it
+    assert _json(full_out / "summary.json")["frames"] > _json(cut_out / "summary.json")["frames"]
 
 
 def _foreign_record(store: Path, demo_file: Path, measure: MeasureSettings) -> None:

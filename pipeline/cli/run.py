@@ -21,8 +21,11 @@ def add_parser(sub) -> None:
                                    "run while one holds it is refused at once (exit 2). Exit 0 ok, 1 when new files "
                                    "were skipped, 2 for a configuration or usage error (one line on stderr: a "
                                    "missing input, a bad setting, a store measured under other settings, a store "
-                                   "or products directory in use), 130 when interrupted (committed work is "
-                                   "kept).")
+                                   "or products directory in use, a calibration scale other than the store's), 3 "
+                                   "when no forecast can be made yet (no reversal or minimum, no complete window, "
+                                   "too few calibration rows of the phase: every other product, the summary with "
+                                   "the reason and the report are still written), 130 when interrupted (committed "
+                                   "work is kept).")
     p.add_argument("config", metavar="CONFIG.toml", help="configuration file (see configs/example.toml)")
     p.set_defaults(func=run)
     d = sub.add_parser("demo", help="run the embedded demo (synthetic star, fictional magnetograph)",
@@ -49,8 +52,26 @@ def _fmt_crossing(c):
     return f"{c['time_iso']} ({c['time']:.3f}, interval {c['low']:.3f}-{c['high']:.3f})"
 
 
+def _fmt_year(v) -> str:
+    return "n/a" if v is None else f"{v:.3f}"
+
+
+def _precursor_line(p: dict) -> str:
+    """When and how the precursor was taken (or why it could not be)."""
+    phase = p.get("phase") or "none"
+    detail = p.get("precursor_detail") or {}
+    window = ""
+    if detail.get("time") is not None and detail.get("window_years") is not None:
+        window = f", window {detail['time'] - detail['window_years']:.3f}-{detail['time'] + detail['window_years']:.3f}"
+    as_of = f", as of {p['as_of']}" if p.get("as_of") else ""
+    return (f"precursor phase {phase}{window}; final dipole reversal {_fmt_year(p.get('reversal_time'))}; minimum "
+            f"{_fmt_year(p.get('minimum_time'))} ({p.get('minimum_status') or 'not known'}); target cycle "
+            f"{p.get('target_cycle') if p.get('target_cycle') is not None else 'n/a'}; data to {p.get('data_date')}"
+            f"{as_of}")
+
+
 def print_outcome(result, stream=None) -> None:
-    """Forecast, reversal epochs (and the truth when known) and where the products are (default: stdout)."""
+    """Forecast (or why there is none), reversal epochs (and the truth when known) and where the products are."""
     s = result.summary
     f = s["forecast"]
     w = (stream or sys.stdout).write
@@ -60,12 +81,20 @@ def print_outcome(result, stream=None) -> None:
         r = s["reversals"][pole]
         fin = r.get("final")
         w(f"{pole:6s} reversals: {len(r['crossings'])}; final: {_fmt_crossing(fin) if fin else 'none'}\n")
-    lo68, hi68 = f["interval_68"]
-    lo95, hi95 = f["interval_95"]
-    w(f"next-cycle amplitude: {f['amplitude']:.1f} (68%: {lo68:.1f}-{hi68:.1f}; 95%: {lo95:.1f}-{hi95:.1f}); "
-      f"precursor {f['precursor']:.3g} G, method {f['method']}, {f['n_cycles']} cycles, r = {f['r']:.2f}\n")
-    for warning in f.get("warnings", []):
-        w(f"warning: {warning}\n")
+    w(_precursor_line(s.get("precursor") or {}) + "\n")
+    if f is None:
+        w(f"no forecast: {s.get('forecast_unavailable')}\n")
+    else:
+        lo68, hi68 = f["interval_68"]
+        lo95, hi95 = f["interval_95"]
+        target = f.get("target_cycle")
+        w(f"next-cycle amplitude: {f['amplitude']:.1f} "
+          f"(68%: {lo68:.1f}-{hi68:.1f}; 95%: {lo95:.1f}-{hi95:.1f}); precursor {f['precursor']:.3g} G at phase "
+          f"{f.get('phase')}, method {f['method']}, {f['n_cycles']} cycles, r = {f['r']:.2f}\n")
+        for warning in f.get("warnings", []):
+            w(f"warning: {warning}\n")
+        for reason in f.get("provisional_reasons") or []:
+            w(f"may be revised: {reason}\n")
     truth = s.get("truth")
     if truth:
         for pole in ("north", "south"):
@@ -74,9 +103,11 @@ def print_outcome(result, stream=None) -> None:
             diff = "" if not (fin and t is not None) else f" (recovered - truth = {fin['time'] - t:+.3f} yr)"
             w(f"truth: {pole} final reversal {t if t is None else f'{t:.3f}'}{diff}\n")
         amp = truth.get("next_amplitude")
-        if amp is not None:
-            inside = lo95 <= amp <= hi95
+        if amp is not None and f is not None:
+            inside = f["interval_95"][0] <= amp <= f["interval_95"][1]
             w(f"truth: next-cycle amplitude {amp:.1f} ({'inside' if inside else 'OUTSIDE'} the 95% interval)\n")
+        elif amp is not None:
+            w(f"truth: next-cycle amplitude {amp:.1f} (no forecast to compare)\n")
     w(f"products: {result.products_dir}\n")
     if result.report:
         w(f"report: {result.report}\n")
@@ -97,6 +128,9 @@ def _execute(config) -> int:
         return EXIT_USAGE
     for m in result.messages:
         print(f"polecast: {m}", file=sys.stderr)
+    if result.summary["forecast"] is None:
+        # exit 3 (no forecast yet) or 2 (a calibration of another scale): the reason in one line
+        print(f"polecast: no forecast: {result.summary['forecast_unavailable']}", file=sys.stderr)
     print_outcome(result)
     return result.exit_code
 

@@ -338,7 +338,7 @@ def draw_figures(products: Products, skip_reasons: dict, settings: ReportSetting
 
     drawn = {
         "series": figures.polar_series_figure(products.series, settings, reversals=products.reversals,
-                                              cycles=products.cycles),
+                                              cycles=products.cycles, precursor=products.forecast),
         "latitude_time": figures.latitude_time_figure(products.diagram, settings, cap_latitude_deg=cap_latitude_deg),
     }
     if products.calibration is not None and products.calibration.n_cycles >= 3:

@@ -28,6 +28,7 @@ __all__ = [
     "latitude_time_figure",
     "calibration_figure",
     "forecast_history_figure",
+    "TARGET_COLOURS",
     "diagnostics_figure",
     "figure_size_in",
     "save_figure",
@@ -133,8 +134,27 @@ def _mark_cycles(ax, cycles: dict | None) -> None:
             seen.add(name)
 
 
+def _precursor_window(precursor: dict | None) -> tuple[float, float, str] | None:
+    """``(start, end, label)`` of the precursor window of a forecast (or forecast-state) object, or None."""
+    detail = (precursor or {}).get("precursor_detail") or {}
+    centre, half = detail.get("time"), detail.get("window_years")
+    if not isinstance(centre, (int, float)) or not isinstance(half, (int, float)) or not half > 0:
+        return None
+    phase = (precursor or {}).get("phase") or detail.get("phase") or "?"
+    return float(centre) - float(half), float(centre) + float(half), f"precursor window ({phase})"
+
+
+def _mark_precursor_window(ax, window) -> None:
+    """The precursor window as a hatched span, ``gid`` ``precursor-window``."""
+    if window is None:
+        return
+    lo, hi, label = window
+    ax.axvspan(lo, hi, facecolor="#f2c14e", alpha=0.28, edgecolor="#a87b00", hatch="//", linewidth=0.8,
+               label=label, gid="precursor-window", zorder=0)
+
+
 def polar_series_figure(series, settings, *, reversals: dict | None = None,
-                        cycles: dict | None = None) -> Figure:
+                        cycles: dict | None = None, precursor: dict | None = None) -> Figure:
     """North, south and axial-dipole polar fields per rotation, smoothed, with reversals and cycle extrema.
 
     Parameters
@@ -148,6 +168,12 @@ def polar_series_figure(series, settings, *, reversals: dict | None = None,
         ``crossings`` and ``final``; times in decimal years).
     cycles : dict, optional
         The ``polecast cycles`` object (``cycles``: minima and maxima, decimal years).
+    precursor : dict, optional
+        The forecast object, or the forecast state when no forecast could be
+        made (``phase`` and ``precursor_detail`` with the window's centre
+        ``time`` and half-width ``window_years``, decimal years): the window
+        is drawn as a hatched span on both panels (``gid``
+        ``precursor-window``).
 
     Returns
     -------
@@ -185,6 +211,9 @@ def polar_series_figure(series, settings, *, reversals: dict | None = None,
         top.set_xlim(t.min() - pad, t.max() + pad)
         _mark_cycles(top, cycles)
         _mark_cycles(bottom, cycles)
+        window = _precursor_window(precursor)
+        for ax in (top, bottom):
+            _mark_precursor_window(ax, window)
         for ax in (top, bottom):
             ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     top.set_ylabel("polar-cap mean Br (G)")
@@ -193,7 +222,8 @@ def polar_series_figure(series, settings, *, reversals: dict | None = None,
     smoothing = "" if series is None else str(series.attrs.get("smoothing_description", ""))
     b0 = "" if series is None else str(series.attrs.get("b0_method", ""))
     top.set_title(f"Polar fields per Carrington rotation (B0 method: {b0 or 'n/a'}; smoothing: "
-                  f"{smoothing or 'n/a'}); shaded: reversal intervals", fontsize="small")
+                  f"{smoothing or 'n/a'})\nshaded: reversal intervals; hatched: precursor window",
+                  fontsize="small")
     return fig
 
 
@@ -333,50 +363,95 @@ def calibration_figure(table, settings, *, forecast: dict | None = None,
     return fig
 
 
+#: colours of successive target cycles in the history and trajectory figures (our own choice)
+TARGET_COLOURS = ("#b35806", "#542788", "#1b7837", "#2166ac", "#b2182b", "#4d4d4d")
+
+
+def _target_label(target) -> str:
+    return "target unknown" if target is None else f"target cycle {target}"
+
+
+def _entry_date_years(e: dict, key: str = "data_date") -> float:
+    """Decimal year of an entry's ISO date (``data_date``); ValueError/KeyError/TypeError when unusable."""
+    return float(_years(np.array([str(e[key])[:10]], dtype="datetime64[D]"))[0])
+
+
+def _rows_by_target(entries: list, date_key: str = "data_date") -> dict:
+    """Target cycle -> sorted ``(t, a, lo68, hi68, lo95, hi95)`` rows of the entries with a usable date and amplitude."""
+    groups: dict = {}
+    for e in entries:
+        try:
+            t = _entry_date_years(e, date_key)
+            a = float(e["amplitude"])
+        except (KeyError, TypeError, ValueError):
+            continue
+        if not math.isfinite(a):
+            continue
+        i68 = e.get("interval_68") or [a, a]
+        i95 = e.get("interval_95") or [a, a]
+        target = e.get("target_cycle")
+        target = target if isinstance(target, int) and not isinstance(target, bool) else None
+        groups.setdefault(target, []).append(
+            (t, a, *[math.nan if v is None else float(v) for v in (*i68, *i95)]))
+    return {k: sorted(v) for k, v in sorted(groups.items(), key=lambda kv: (kv[0] is None, kv[0] or 0))}
+
+
+def _draw_target(ax, rows: list, colour: str, label: str, gid: str) -> None:
+    """One target cycle: 95% and 68% bands (``gid`` ``GID:band95``/``GID:band68``), 95% error bars and the
+    amplitude line (``gid`` ``GID``)."""
+    arr = np.array(rows)
+    t, a, lo68, hi68, lo95, hi95 = arr.T
+    if t.size > 1:
+        ax.fill_between(t, lo95, hi95, color=colour, alpha=0.13, linewidth=0, label=f"{label}: 95% interval",
+                        gid=f"{gid}:band95")
+        ax.fill_between(t, lo68, hi68, color=colour, alpha=0.26, linewidth=0, label=f"{label}: 68% interval",
+                        gid=f"{gid}:band68")
+    ax.errorbar(t, a, yerr=[a - lo95, hi95 - a], fmt="none", ecolor=colour, elinewidth=0.7, capsize=2.5, alpha=0.8)
+    ax.plot(t, a, "o-", color=colour, markersize=3.5, linewidth=1.3, label=f"{label}: forecast amplitude", gid=gid)
+
+
 def forecast_history_figure(entries: list, settings) -> Figure:
     """How the forecast moved with each update: amplitude and its 68% / 95% intervals against data date.
+
+    One line per target cycle: entries forecasting different cycles are never
+    joined (an update after the minimum predicts the cycle that minimum begins,
+    not the one before it).
 
     Parameters
     ----------
     entries : list of dict
         :func:`pipeline.history.read_history` entries (``data_date`` ISO date,
-        ``amplitude``, ``interval_68``, ``interval_95``); entries without a
-        usable date or amplitude are left out.
+        ``amplitude``, ``interval_68``, ``interval_95``, ``target_cycle``;
+        entries written before ``target_cycle`` existed form one "target
+        unknown" line); entries without a usable date or amplitude are left out.
     settings : pipeline.report.ReportSettings
 
     Returns
     -------
     matplotlib.figure.Figure
+        The amplitude line of each target carries ``gid``
+        ``history:target:N`` (``history:target:unknown``), its bands
+        ``...:band68`` / ``...:band95``.
     """
-    rows = []
-    for e in entries:
-        try:
-            t = float(_years(np.array([str(e["data_date"])[:10]], dtype="datetime64[D]"))[0])
-            a = float(e["amplitude"])
-        except (KeyError, TypeError, ValueError):
-            continue
-        i68 = e.get("interval_68") or [a, a]
-        i95 = e.get("interval_95") or [a, a]
-        rows.append((t, a, *[math.nan if v is None else float(v) for v in (*i68, *i95)]))
-    rows.sort()
+    groups = _rows_by_target(entries)
+    n = sum(len(v) for v in groups.values())
     fig, axes = _new_figure(settings, 0.45)
     ax = axes[0, 0]
-    if not rows:
+    if not groups:
         _no_data(ax, "no forecast history yet")
     else:
-        arr = np.array(rows)
-        t, a, lo68, hi68, lo95, hi95 = arr.T
-        if t.size > 1:
-            ax.fill_between(t, lo95, hi95, step="post", color="#e7c49b", alpha=0.5, linewidth=0, label="95% interval")
-            ax.fill_between(t, lo68, hi68, step="post", color="#d9822b", alpha=0.45, linewidth=0, label="68% interval")
-        ax.errorbar(t, a, yerr=[a - lo95, hi95 - a], fmt="none", ecolor="#b0651c", elinewidth=0.8, capsize=3)
-        ax.plot(t, a, "o-", color="#7a3e0b", markersize=4, linewidth=1.2, label="forecast amplitude")
-        if t.size == 1:
-            ax.set_xlim(t[0] - 0.5, t[0] + 0.5)
-        ax.legend(fontsize="x-small", loc="best", framealpha=0.85)
+        times = []
+        for k, (target, rows) in enumerate(groups.items()):
+            gid = f"history:target:{'unknown' if target is None else target}"
+            _draw_target(ax, rows, TARGET_COLOURS[k % len(TARGET_COLOURS)], _target_label(target), gid)
+            times += [r[0] for r in rows]
+        if len(set(times)) == 1:
+            ax.set_xlim(times[0] - 0.5, times[0] + 0.5)
+        ax.ticklabel_format(axis="x", useOffset=False, style="plain")
+        ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     ax.set_xlabel("date of the newest data used (decimal year)")
     ax.set_ylabel("forecast amplitude (sunspot number)")
-    ax.set_title(f"Forecast history ({len(rows)} update{'s' if len(rows) != 1 else ''})", fontsize="small")
+    ax.set_title(f"Forecast history ({n} update{'s' if n != 1 else ''}; one line per target cycle)", fontsize="small")
     return fig
 
 

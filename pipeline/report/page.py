@@ -12,7 +12,7 @@ import math
 from pipeline.report.html import figure_html, format_number, json_block, note_html, page_html, table_html
 from pipeline.regression import CAUTION_SENTENCES
 
-__all__ = ["CAUTION_TEXTS", "reversal_tables", "forecast_table", "truth_table", "cycles_table",
+__all__ = ["CAUTION_TEXTS", "reversal_tables", "forecast_table", "precursor_statement", "truth_table", "cycles_table",
            "skipped_table", "store_table", "versions_table", "calibration_rows_table", "assemble_page"]
 
 #: the cautions shown at the top of every report (the forecast's own, pipeline.regression)
@@ -67,10 +67,84 @@ def reversal_tables(reversals: dict | None) -> str:
     return "\n".join(parts)
 
 
+def _window_text(detail: dict) -> str | None:
+    centre, half = detail.get("time"), detail.get("window_years")
+    if not isinstance(centre, (int, float)) or not isinstance(half, (int, float)):
+        return None
+    n = detail.get("n_rotations")
+    return (f"{_f(centre - half)} \u2013 {_f(centre + half)} (centre {_f(centre)} \u00b1 {half:g} yr"
+            + (f", {n} rotations)" if n is not None else ")"))
+
+
+#: how each route takes the precursor (pipeline.precursor.precursor_at_phase)
+_ROUTES = {"minimum": "window mean around the cycle minimum",
+           "after_reversal": "window mean L years after the final dipole reversal"}
+
+
+def precursor_statement(forecast: dict | None) -> str:
+    """When and how the precursor was taken: phase, window, route, minimum and its status, target, data date.
+
+    ``forecast`` is the forecast object or, when no forecast could be made,
+    the state ``polecast run`` wrote in its place (the same keys, with
+    ``forecast_unavailable``).  Old products without the state keys give a note.
+    """
+    f = forecast or {}
+    if "phase" not in f and "precursor_detail" not in f:
+        return note_html("the forecast product does not say when the precursor was taken")
+    detail = f.get("precursor_detail") or {}
+    phase = f.get("phase")
+    lag = f.get("lag_years")
+    if phase is None:
+        when = "no phase could be taken"
+    elif phase == "minimum":
+        when = "minimum (the window around the cycle minimum)"
+    else:
+        when = f"{phase} ({_f(lag, 'g')} years after the final dipole reversal)"
+    status = f.get("minimum_status")
+    minimum = f.get("minimum_time")
+    rows = [
+        ["phase", when + ("" if not f.get("phase_requested") else f"; requested: {f['phase_requested']}")],
+        ["window", _window_text(detail) or "none"],
+        ["route", (f"{detail.get('route')}: {_ROUTES.get(detail.get('route'), '')}".rstrip(": ")
+                   if detail.get("route") else "none") + (f"; precursor kind {detail['kind']}" if detail.get("kind")
+                                                          else "")],
+        ["final dipole reversal (yr)", _f(f.get("reversal_time"))
+         + (" (provisional)" if f.get("reversal_provisional") else "")],
+        ["cycle minimum (yr) and status", f"{_f(minimum)} ({status or 'not known'})"],
+        ["target cycle (ordinal in the sunspot file)", f.get("target_cycle")],
+        ["newest data used", f.get("data_date")],
+        ["as of", f.get("as_of") or "all the data (no as-of date)"],
+        ["source", f.get("precursor_source")],
+    ]
+    sunspots = f.get("sunspot_input") or {}
+    if sunspots:
+        rows.append(["sunspot numbers", f"version {sunspots.get('sunspot_number_version')} (declared); layout "
+                     f"{sunspots.get('format')} ({sunspots.get('format_source')}); "
+                     f"{sunspots.get('months_used')} months used"])
+    out = table_html(["", ""], rows)
+    reasons = f.get("provisional_reasons") or []
+    notes = (f.get("phase_notes") or []) + [n for n in (f.get("notes") or []) if n not in (f.get("phase_notes") or [])]
+    if reasons:
+        out += "<ul>" + "".join(f"<li>may be revised: {_esc_text(r)}</li>" for r in reasons) + "</ul>"
+    if notes:
+        out += "<ul>" + "".join(f"<li>{_esc_text(n)}</li>" for n in notes) + "</ul>"
+    return out
+
+
 def forecast_table(forecast: dict | None) -> str:
-    """The forecast: amplitude, intervals, method, cycles, r, leave-one-out RMSE, precursor and warnings."""
+    """The forecast: amplitude, intervals, method, cycles, r, leave-one-out RMSE, precursor and warnings.
+
+    A forecast-state object (``forecast_unavailable`` set, no ``amplitude``)
+    gives "No forecast" and the one-line reason instead.
+    """
     if not forecast:
         return note_html("no forecast product (forecast.json): the forecast is left out")
+    if forecast.get("forecast_unavailable") and forecast.get("amplitude") is None:
+        out = (f"<p class=\"caution\"><strong>No forecast.</strong> "
+               f"{_esc_text(forecast['forecast_unavailable'])}</p>")
+        if forecast.get("cautions"):
+            out += note_html(f"Caution (from the forecast): {forecast['cautions']}")
+        return out
     i68 = forecast.get("interval_68") or [None, None]
     i95 = forecast.get("interval_95") or [None, None]
     pe = forecast.get("precursor_error")
@@ -88,6 +162,12 @@ def forecast_table(forecast: dict | None) -> str:
         ["newest data used", forecast.get("data_date")],
         ["precursor source", forecast.get("precursor_source")],
     ]
+    if forecast.get("scale") is not None or forecast.get("calibration_scale") is not None:
+        rows.append(["scale in force", forecast.get("scale") or "not declared"])
+        rows.append(["calibration scale", forecast.get("calibration_scale") or "not declared"])
+    override = forecast.get("scale_override")
+    if isinstance(override, dict):
+        rows.append(["scale override", override.get("message")])
     warnings = forecast.get("warnings") or []
     rows.append(["warnings", "; ".join(map(str, warnings)) if warnings else "none"])
     out = table_html(["quantity", "value"], rows)
@@ -205,6 +285,8 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
             headline.append(f"Final {pole} reversal {fin.get('time_iso')} ({_f(fin.get('low'))} \u2013 "
                             f"{_f(fin.get('high'))}).")
     sections = []
+    if fc.get("forecast_unavailable") and _number_of(fc.get("amplitude")) is None:
+        headline.insert(0, f"No forecast: {fc['forecast_unavailable']}")
     summary_body = ("<p>" + " ".join(map(_esc_text, headline)) + "</p>") if headline else note_html(
         "no forecast or final reversal yet")
     truth = truth_table(products.summary, products.reversals, products.forecast)
@@ -218,7 +300,8 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
                      figure_html(figures["series"], "North and south polar-cap mean Br and the axial dipole "
                                  "(N \u2212 S)/2 per Carrington rotation with one-sigma error bars and the smoothed "
                                  "curves; shaded spans are the reversal intervals, heavy lines the final reversals, "
-                                 "dashed/dash-dot lines the cycle minima/maxima.", "polar-field series")
+                                 "dashed/dash-dot lines the cycle minima/maxima, the hatched span the window the "
+                                 "precursor was taken in.", "polar-field series")
                      + reversal_tables(products.reversals)))
     sections.append(("latitude-time", "Latitude-time diagram",
                      figure_html(figures["latitude_time"], "Longitude-averaged radial field per latitude bin and "
@@ -226,6 +309,7 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
                                  "boundary.", "latitude-time diagram")))
     sections.append(("forecast", "Forecast",
                      forecast_table(products.forecast)
+                     + "<h3>When and how the precursor was taken</h3>" + precursor_statement(products.forecast)
                      + _figure_or_note(figures, "calibration", "Calibration cycles (precursor against next-cycle "
                                        "amplitude), the fitted line with its 68% and 95% prediction bands, and this "
                                        "cycle's forecast with its 68% (thick) and 95% (thin) intervals.",
@@ -234,7 +318,9 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
                      + "<h3>Cycle minima and maxima</h3>" + cycles_table(products.cycles)))
     sections.append(("history", "Forecast history",
                      _figure_or_note(figures, "history", "The forecast amplitude at each update against the date "
-                                     "of the newest data used, with its 68% and 95% intervals.", "forecast history",
+                                     "of the newest data used, with its 68% and 95% intervals; one line per target "
+                                     "cycle (updates forecasting different cycles are never joined).",
+                                     "forecast history",
                                      "no forecast history (forecast_history.jsonl missing or empty)")))
     sections.append(("diagnostics", "Diagnostics",
                      figure_html(figures["diagnostics"], "B0 angle and polar-cap coverage per frame; skipped files "
