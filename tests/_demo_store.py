@@ -76,12 +76,12 @@ def seed_store(demo_store: Path, store: Path, paths) -> Path:
 
 def write_run_config(path: Path, archive: Path, out: Path, *, store: Path | None = None, extra: str = "",
                      report: bool = False, sunspots: Path | None = None, calibration: Path | None = None,
-                     forecast: str = "") -> Path:
+                     forecast: str = "", allow_scale_mismatch: bool = True) -> Path:
     """A ``polecast run`` TOML on ``archive`` with the demo's sunspots, calibration and analysis sections.
 
     ``extra`` goes into ``[run]``; ``forecast`` (TOML lines such as ``as_of = "2054-01-01"``) is appended to
-    the demo's ``[forecast]`` section.  ``allow_scale_mismatch`` is on, as in ``configs/demo.toml`` (the
-    demo's calibration declares the synthetic truth's scale).
+    the demo's ``[forecast]`` section.  ``allow_scale_mismatch`` is on by default, as in ``configs/demo.toml``
+    (the demo's calibration declares the synthetic truth's scale).
     """
     store = store or out / "store.sqlite"
     sections = demo_sections_toml()
@@ -98,7 +98,7 @@ calibration = "{calibration or DEMO / 'calibration.csv'}"
 store = "{store}"
 products_dir = "{out}"
 report = {'true' if report else 'false'}
-allow_scale_mismatch = true
+allow_scale_mismatch = {'true' if allow_scale_mismatch else 'false'}
 {extra}
 {sections}
 """, encoding="utf-8")

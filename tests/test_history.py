@@ -65,3 +65,32 @@ def test_an_append_waits_for_another_writer_holding_the_file(tmp_path):
     writer.join(30)
     entries, problems = read_history(path)
     assert problems == [] and [e["data_date"] for e in entries] == ["2034-01-31", "2034-02-01", "2034-02-28"]
+
+
+def test_entries_record_the_state_and_the_calibration_file(tmp_path):
+    """Issue 10: an entry copies the forecast's phase, lag, minimum and status, reversal, target cycle and
+    as-of date, and names the calibration file by its BLAKE2b-256 digest (hashlib, RFC 7693) and the scale
+    its rows of that phase declare (the other phase's rows declare another; regression only)."""
+    import hashlib
+
+    cal = tmp_path / "calibration.csv"
+    rows = ["cycle,precursor,amplitude,phase,scale"]
+    rows += [f"{k},{1 + 0.1 * k},{100 + 5 * k},minimum,kvm cap60" for k in range(5)]
+    rows += [f"{k},{1 + 0.1 * k},{100 + 5 * k},reversal+4,kvm cap60 lag" for k in range(5)]
+    cal.write_text("\n".join(rows) + "\n")
+    state = {"phase": "reversal+4", "lag_years": 4.0, "minimum_time": 2056.6, "minimum_status": "pending",
+             "reversal_time": 2047.6, "target_cycle": 33, "as_of": "2053-01-01", "scale": "kvm cap60 lag"}
+    entry = history_entry(dict(FORECAST, **state), "2052-12-04", calibration=str(cal), precursor_source="store")
+    for key, value in state.items():
+        assert entry[key] == value, key
+    assert entry["calibration_digest"] == hashlib.blake2b(cal.read_bytes(), digest_size=32).hexdigest()
+    assert entry["calibration_scale"] == "kvm cap60 lag"
+    at_minimum = history_entry(dict(FORECAST, phase="minimum"), "2057-01-01", calibration=str(cal))
+    assert at_minimum["calibration_scale"] == "kvm cap60" and at_minimum["target_cycle"] is None
+    # a file that is gone: the identity is unknown, not invented
+    gone = history_entry(FORECAST, "2057-01-01", calibration=str(tmp_path / "moved.csv"))
+    assert gone["calibration_digest"] is None and gone["calibration_scale"] is None
+    # given explicitly, nothing is read
+    given = history_entry(FORECAST, "2057-01-01", calibration="elsewhere.csv", calibration_digest="ab",
+                          calibration_scale=None)
+    assert given["calibration_digest"] == "ab" and list(given) == list(HISTORY_KEYS)

@@ -384,6 +384,24 @@ def test_history_entries_record_phase_minimum_target_and_the_calibration(tmp_pat
     assert entries[1]["amplitude"] == pytest.approx(entries[0]["amplitude"], rel=1e-12)  # the same minimum rows
 
 
+def test_a_calibration_of_another_scale_is_exit_2_with_every_other_product_written(tmp_path, demo_run, capsys):
+    """Issue 10: a calibration whose declared scale differs from the store's measurement definition is a
+    configuration error (exit 2, one line naming both scales), not an abort: the series, reversals, cycles
+    and summary (forecast null, the reason) are written.  The demo table declares the synthetic truth's
+    scale (truth.json calibration_scale), the store measures through the B0 fill (configs/demo.toml)."""
+    conf, out, links = _cut_run(tmp_path, demo_run, SPAN_FIRST, "z", allow_scale_mismatch=False)
+    assert main(["run", str(conf)]) == 2
+    cap = capsys.readouterr()
+    reason = _stderr_reason(cap.err)
+    assert repr(_truth()["calibration_scale"]) in reason and "b0_method=fill" in reason
+    summary = _json(out / "summary.json")
+    assert summary["forecast"] is None and summary["forecast_unavailable"] == reason
+    assert cap.out.splitlines()[0] == f"ingest: 0 new (0 ok, 0 skipped), {len(links)} already known"
+    for name in ("series.nc", "reversals.json", "cycles.json"):
+        assert (out / name).is_file(), name
+    assert not (out / "forecast_history.jsonl").exists()
+
+
 def test_as_of_run_forecasts_with_what_was_known_then(tmp_path, demo_run, capsys):
     """Issue 10, [forecast] as_of: a run over the whole archive as of 2054-01-01 gives the forecast of a run
     given only the frames and the sunspot months from before that date (the causality the issue asks for;
