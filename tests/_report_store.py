@@ -21,6 +21,17 @@ STEP_YR = 0.09            # about 1.2 Carrington rotations between frames
 N_FRAMES = 28
 NORTH_REVERSAL_YR = 2032.2   # the synthetic north field changes sign here
 SOUTH_REVERSAL_YR = 2032.5
+#: when and how the forecast's precursor was taken (invented state keys, as pipeline.asof writes them)
+PRECURSOR_STATE = {
+    "phase": "reversal+1", "lag_years": 1.0, "reversal_time": 2032.2, "minimum_time": 2035.4,
+    "minimum_status": "pending", "target_cycle": 8, "data_date": "2033-06-01", "as_of": None,
+    "phase_requested": "auto", "phase_notes": ["the cycle minimum candidate at 2035.400 is pending"],
+    "provisional_reasons": ["the final dipole reversal may move"], "precursor_source": "store",
+    "precursor_detail": {"time": 2033.2, "window_years": 0.25, "n_rotations": 7, "route": "after_reversal",
+                         "kind": "dipole", "phase": "reversal+1"},
+    "sunspot_input": {"sunspot_number_version": 2, "format": "semicolon-monthly", "format_source": "declared",
+                      "months_used": 40},
+}
 #: history updates (data date, precursor, target cycle, phase): three for cycle 7 after its reversal, then two
 #: for cycle 8 once the minimum beginning it is known (invented; the figure must not join the two targets)
 HISTORY_UPDATES = (("2033-02-01", 1.2, 7, "reversal+2"), ("2033-03-01", 1.3, 7, "reversal+2"),
@@ -108,7 +119,7 @@ def write_products(products, store):
         "cycle,precursor,amplitude\nT1,1.1,82\nT2,1.6,121\nT3,0.9,70\nT4,2.0,150\nT5,1.4,99\nT6,1.8,131\n")
     table = read_calibration_csv(products / "calibration.csv")
     fc = forecast_amplitude(table, 1.5, config.forecast, precursor_error=0.1).to_dict()
-    fc["data_date"] = "2033-06-01"
+    fc.update(PRECURSOR_STATE)
     (products / "forecast.json").write_text(json.dumps(fc))
     for date, x, target, phase in HISTORY_UPDATES:
         f = forecast_amplitude(table, x, config.forecast).to_dict()

@@ -20,7 +20,7 @@ from pipeline.config import ConfigError, MeasureSettings
 from pipeline.report import (FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products,
                              render_report)
 from pipeline.report.html import table_html
-from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
+from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, PRECURSOR_STATE, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
                                  build_store, write_products)
 
 #: PNG file signature, PNG specification (ISO/IEC 15948:2004 / W3C PNG 2nd ed., sec. 5.2)
@@ -177,6 +177,59 @@ def test_series_figure_draws_every_rotation_the_smoothed_curves_and_the_reversal
     for ax in (top, bottom):
         assert [ln.get_xdata()[0] for ln in _gid_lines(ax, "cycle:minimum")] == [cycles["minimum_time"]]
         assert [ln.get_xdata()[0] for ln in _gid_lines(ax, "cycle:maximum")] == [cycles["maximum_time"]]
+
+
+def test_series_figure_draws_the_precursor_window_of_the_forecast(built):
+    """Issue 10: the window the precursor was averaged over (forecast.json precursor_detail: centre time +-
+    window_years, decimal years) is a span on both panels, inside the drawn time range (products of
+    tests/_report_store.py; regression only)."""
+    fig = built["rendered"].figures["series"]
+    detail = PRECURSOR_STATE["precursor_detail"]
+    want = (detail["time"] - detail["window_years"], detail["time"] + detail["window_years"])
+    for ax in fig.axes:
+        (span,) = [p for p in ax.patches if p.get_gid() == "precursor-window"]
+        assert _span_x(span) == pytest.approx(want, abs=1e-12)
+        assert span.get_label() == f"precursor window ({PRECURSOR_STATE['phase']})"
+        lo, hi = ax.get_xlim()
+        assert lo < want[0] and want[1] < hi
+    from pipeline.report.figures import polar_series_figure
+
+    plain = polar_series_figure(built["rendered"].products.series, ReportSettings(), precursor=None)
+    assert not [p for ax in plain.axes for p in ax.patches if p.get_gid() == "precursor-window"]
+
+
+def test_page_states_when_and_how_the_precursor_was_taken(built):
+    """Issue 10: the page gives the phase, the window, the route, the minimum and its status, the target cycle,
+    the data date and the declared sunspot-number version (forecast.json of tests/_report_store.py)."""
+    text = " ".join(_parse(built["index"]).text)
+    assert "When and how the precursor was taken" in text
+    st, detail = PRECURSOR_STATE, PRECURSOR_STATE["precursor_detail"]
+    lo, hi = detail["time"] - detail["window_years"], detail["time"] + detail["window_years"]
+    assert f"{st['phase']} (1 years after the final dipole reversal)" in text
+    assert f"{lo:.3f} \u2013 {hi:.3f} (centre {detail['time']:.3f} \u00b1 {detail['window_years']:g} yr, " \
+           f"{detail['n_rotations']} rotations)" in text
+    assert f"{detail['route']}: window mean L years after the final dipole reversal" in text
+    assert f"{st['minimum_time']:.3f} ({st['minimum_status']})" in text
+    assert f"{st['reversal_time']:.3f}" in text and st["data_date"] in text
+    assert "version 2 (declared); layout semicolon-monthly (declared); 40 months used" in text
+    assert f"may be revised: {st['provisional_reasons'][0]}" in text
+
+
+def test_page_without_a_forecast_gives_the_reason_and_keeps_the_cautions(built, tmp_path):
+    """A run that could not forecast writes the state with forecast_unavailable in forecast.json: the page says
+    "No forecast" with the reason, still states how the precursor was taken, and keeps the cautions."""
+    products = tmp_path / "p"
+    shutil.copytree(built["products"], products)
+    reason = "calibration table: got 0 cycles at phase 'reversal+1' <none>"
+    state = dict(PRECURSOR_STATE, forecast_unavailable=reason)
+    (products / "forecast.json").write_text(json.dumps(state))
+    rendered = render_report(built["store"], tmp_path / "out", products)
+    text = " ".join(" ".join(_parse(rendered.index).text).split())
+    assert f"No forecast. {reason}" in text and f"No forecast: {reason}" in text
+    assert "When and how the precursor was taken" in text and "after_reversal" in text
+    low = text.lower()
+    assert "statistical forecast" in low and "official space-weather forecasts" in low
+    assert any(p.get_gid() == "precursor-window" for p in rendered.figures["series"].axes[1].patches)
 
 
 def test_latitude_time_figure_maps_every_bin_and_marks_the_cap_of_the_settings_in_force(built):
