@@ -32,6 +32,7 @@ Products (all in ``run.products_dir``):
 ``forecast_history.jsonl`` append-only history (unless ``run.history`` says elsewhere)
 ``calibration.csv``      a copy of the calibration table used
 ``config.json``          the configuration used
+``trajectory.json``      the forecast as of every ``run.trajectory_step_months`` month starts (when set)
 ``summary.json``         reversals, forecast (or null and the reason), how the precursor was taken,
                          sunspot input (declared sunspot-number version), calibration digest and scale,
                          truth (demo), ingest summary, cautions
@@ -56,19 +57,23 @@ records measured otherwise is refused with a one-line
 from __future__ import annotations
 
 import dataclasses
+import datetime as _dt
 import json
 import shutil
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
-from pipeline.cli.forecast import EXIT_NO_FORECAST
-from pipeline.config import ConfigError
+import numpy as np
+
+from pipeline.cli import EXIT_NO_FORECAST
+from pipeline.config import ConfigError, check_number
 from pipeline.jsonio import atomic_output, finite_or_none, write_json
 from pipeline.regression import CAUTIONS
 
-__all__ = ["RunSettings", "RunResult", "RunLockedError", "RUN_LOCK_NAME", "EXIT_NO_FORECAST", "run_lock",
-           "run_pipeline", "find_demo_data", "find_demo_config"]
+__all__ = ["RunSettings", "RunResult", "RunLockedError", "RUN_LOCK_NAME", "EXIT_NO_FORECAST",
+           "TRAJECTORY_ROW_KEYS", "run_lock", "run_pipeline", "forecast_trajectory", "find_demo_data",
+           "find_demo_config"]
 
 #: the lock file of a run, inside the products directory
 RUN_LOCK_NAME = ".polecast-run.lock"
@@ -110,6 +115,14 @@ class RunSettings:
         store's measurement definition (the forecast records the override);
         otherwise that is a configuration error (exit 2, every other product
         written).
+    trajectory_step_months : int
+        Write ``trajectory.json``: the run's forecast as of every this-many
+        month starts (:func:`forecast_trajectory`); 0 (default) writes none.
+        Each date rebuilds the polar series from the records before it.
+    trajectory_start : str
+        First as-of date of the trajectory (ISO date); empty: the final
+        dipole reversal of the whole archive (or its first frame when it has
+        none).  The last is the month start after the newest frame.
     """
 
     archive: tuple = ()
@@ -123,6 +136,8 @@ class RunSettings:
     report: bool = True
     remeasure: bool = False
     allow_scale_mismatch: bool = False
+    trajectory_step_months: int = 0
+    trajectory_start: str = ""
 
     def __post_init__(self):
         arch = (self.archive,) if isinstance(self.archive, str) else self.archive
@@ -137,6 +152,20 @@ class RunSettings:
         for name in ("report", "remeasure", "allow_scale_mismatch"):
             if not isinstance(getattr(self, name), bool):
                 raise ConfigError(f"run.{name}: got {getattr(self, name)!r}; expected true or false")
+        check_number("run.trajectory_step_months", self.trajectory_step_months, lo=0, hi=120, integer=True)
+        if isinstance(self.trajectory_start, (_dt.date, _dt.datetime)):  # TOML date
+            object.__setattr__(self, "trajectory_start", self.trajectory_start.isoformat()[:10])
+        if not isinstance(self.trajectory_start, str):
+            raise ConfigError(f"run.trajectory_start: got {self.trajectory_start!r}; expected an ISO date "
+                              f"YYYY-MM-DD or empty")
+        if self.trajectory_start:
+            from pipeline.asof import as_of_instant
+
+            try:
+                as_of_instant(self.trajectory_start)
+            except ValueError:
+                raise ConfigError(f"run.trajectory_start: got {self.trajectory_start!r}; expected an ISO date "
+                                  f"YYYY-MM-DD or empty (the final dipole reversal)") from None
 
     def resolved(self, base: Path) -> "RunSettings":
         """Paths made absolute against ``base`` (the configuration file's folder)."""
@@ -359,6 +388,108 @@ def _forecast_products(inputs, table, config, calibration: Path) -> tuple[dict, 
     return doc, doc, None, 0
 
 
+def _truth_target(truth: dict, cycles: list) -> int | None:
+    """The ordinal (as :mod:`pipeline.asof` numbers targets) of the cycle beginning at truth's last minimum."""
+    m = truth.get("last_minimum_time")
+    if m is None:
+        return None
+    minima = np.array([c["minimum_time"] for c in cycles], dtype=np.float64)
+    return 1 + int(np.sum(minima < float(m) - 1.0 / 24.0))   # half a month: the numbering of pipeline.asof
+
+
+#: keys of every row of ``trajectory.json`` (intervals as [low, high]; nulls where no forecast was made)
+TRAJECTORY_ROW_KEYS = ("as_of", "as_of_decimal_year", "data_date", "phase", "target_cycle", "minimum_time",
+                       "minimum_status", "precursor", "precursor_error", "amplitude", "interval_68", "interval_95",
+                       "truth_amplitude", "truth_source", "forecast_unavailable")
+
+
+def _truth_of_target(target, cycles: list, truth: dict | None) -> tuple[float | None, str | None]:
+    """The amplitude a target cycle turned out to have: its smoothed maximum in the sunspot series, else the
+    synthetic star's ``next_amplitude`` when the target is the cycle that begins at its ``last_minimum_time``."""
+    if target is None:
+        return None, None
+    k = int(target) - 1
+    if 0 <= k < len(cycles) and cycles[k].get("maximum_value") is not None:
+        return float(cycles[k]["maximum_value"]), "sunspot maximum"
+    if truth and truth.get("next_amplitude") is not None and truth.get("last_minimum_time") is not None:
+        if truth.get("target_cycle") == target:
+            return float(truth["next_amplitude"]), "truth.json"
+    return None, None
+
+
+def forecast_trajectory(records, months, table, config, dates, *, truth: dict | None = None) -> list[dict]:
+    """The run's forecast as it would have been made as of each date (``trajectory.json``'s rows).
+
+    Parameters
+    ----------
+    records : list of pipeline.measure.FrameRecord
+        The store's records (all of them; each date uses those before it).
+    months : pipeline.cycles.MonthlySeries
+    table : pipeline.regression.CalibrationTable
+        The run's calibration, used whole (a real-time forecast, not a
+        hindcast: :func:`pipeline.hindcast.trajectory` leaves the target out).
+    config : pipeline.config.Config
+    dates : sequence of str
+        As-of dates (ISO), e.g. :func:`pipeline.hindcast.month_starts`.
+    truth : dict, optional
+        :func:`_truth_summary` of a synthetic archive, with ``target_cycle``.
+
+    Returns
+    -------
+    list of dict
+        :data:`TRAJECTORY_ROW_KEYS` per date: the forecast of
+        :func:`pipeline.asof.forecast_inputs` as of the date and the run's own
+        phase rule (:func:`_forecast_products`), or the reason there was none;
+        ``truth_amplitude`` from :func:`_truth_of_target`.
+
+    Notes
+    -----
+    Causal by construction (:mod:`pipeline.asof`): nothing after a date
+    changes its row.
+    """
+    from pipeline.asof import forecast_inputs
+    from pipeline.cycles import cycle_landmarks
+
+    cycles = cycle_landmarks(months.time_decimal_year, months.values, config.cycles)
+    rows = []
+    for date in dates:
+        inputs = forecast_inputs(records, months, config, as_of=date)
+        doc, forecast, reason, _code = _forecast_products(inputs, table, config, Path(config.run.calibration))
+        f = forecast or {}
+        amp, source = _truth_of_target(doc.get("target_cycle"), cycles, truth)
+        rows.append({"as_of": date, "as_of_decimal_year": doc.get("as_of_decimal_year"),
+                     "data_date": doc.get("data_date"), "phase": doc.get("phase"),
+                     "target_cycle": doc.get("target_cycle"), "minimum_time": doc.get("minimum_time"),
+                     "minimum_status": doc.get("minimum_status"), "precursor": f.get("precursor"),
+                     "precursor_error": f.get("precursor_error"), "amplitude": f.get("amplitude"),
+                     "interval_68": f.get("interval_68"), "interval_95": f.get("interval_95"),
+                     "truth_amplitude": amp if forecast is not None else None,
+                     "truth_source": source if forecast is not None else None, "forecast_unavailable": reason})
+    return finite_or_none(rows)
+
+
+def _trajectory_document(records, months, table, config, series, reversals, truth) -> dict:
+    """``trajectory.json``: month starts from ``run.trajectory_start`` to just after the newest frame."""
+    from pipeline.hindcast import month_starts
+    from pipeline.timeutil import decimal_year, from_decimal_year
+
+    rs: RunSettings = config.run
+    t = np.atleast_1d(decimal_year(series["time"].values)) if series.sizes["time"] else np.array([])
+    if t.size == 0:
+        return {"rows": [], "dates": 0}
+    final = (reversals.get("dipole") or {}).get("final") or {}
+    start = rs.trajectory_start or from_decimal_year(float(final.get("time", t.min())))
+    stop = from_decimal_year(float(t.max()) + 1.0 / 12.0)
+    dates = month_starts(start, stop, rs.trajectory_step_months)
+    rows = forecast_trajectory(records, months, table, config, dates, truth=truth)
+    return {"step_months": rs.trajectory_step_months, "start": dates[0] if dates else None,
+            "stop": dates[-1] if dates else None, "phase_requested": config.forecast.phase,
+            "calibration": str(rs.calibration), "rows": rows,
+            "truth": None if truth is None else {"target_cycle": truth.get("target_cycle"),
+                                                 "next_amplitude": truth.get("next_amplitude")},
+            "cautions": CAUTIONS}
+
+
 def _run_locked(config, truth: dict | None, months, table, notes: list, *, progress: bool, on_skip) -> RunResult:
     """The stages of :func:`run_pipeline`, with the run lock held."""
     from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
@@ -416,6 +547,11 @@ def _run_locked(config, truth: dict | None, months, table, notes: list, *, progr
     doc, forecast, unavailable, forecast_code = _forecast_products(inputs, table, config, calibration)
     write_json(out / "forecast.json", doc)
     _copy_file(calibration, out / "calibration.csv")
+    if truth is not None:
+        truth = dict(truth, target_cycle=_truth_target(truth, cycles))
+    if rs.trajectory_step_months:
+        write_json(out / "trajectory.json", _trajectory_document(records, months, table, config, series,
+                                                                 reversals, truth))
 
     # 6. history: one entry per new forecast (data date, as-of date, phase, target, calibration), never rewritten
     history = Path(rs.history) if rs.history else out / "forecast_history.jsonl"

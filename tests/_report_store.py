@@ -92,8 +92,36 @@ def build_store(tmp_path):
     return store
 
 
+#: as-of dates of the trajectory (date, precursor or None for "no forecast", target cycle, phase): invented
+TRAJECTORY_DATES = (("2032-06-01", None, 7, None), ("2032-09-01", 1.2, 7, "reversal+2"),
+                    ("2032-12-01", 1.3, 7, "reversal+2"), ("2033-03-01", 1.4, 7, "reversal+3"),
+                    ("2033-06-01", 1.6, 8, "minimum"), ("2033-09-01", 1.5, 8, "minimum"))
+#: the amplitudes the two targets turned out to have (invented): cycle 7 from the sunspot series, cycle 8 the
+#: synthetic star's truth
+TRAJECTORY_TRUTH = {7: (95.0, "sunspot maximum"), 8: (112.0, "truth.json")}
+
+
+def trajectory_document(table, config) -> dict:
+    """A ``trajectory.json`` like pipeline.run writes, from the calibration ``table`` (invented dates)."""
+    from pipeline.regression import forecast_amplitude
+
+    rows = []
+    for date, x, target, phase in TRAJECTORY_DATES:
+        row = {"as_of": date, "data_date": date, "phase": phase, "target_cycle": target, "amplitude": None,
+               "interval_68": None, "interval_95": None, "truth_amplitude": None, "truth_source": None,
+               "forecast_unavailable": "no configured lag has a complete window yet"}
+        if x is not None:
+            f = forecast_amplitude(table, x, config.forecast).to_dict()
+            amp, source = TRAJECTORY_TRUTH[target]
+            row.update(amplitude=f["amplitude"], interval_68=f["interval_68"], interval_95=f["interval_95"],
+                       precursor=x, truth_amplitude=amp, truth_source=source, forecast_unavailable=None)
+        rows.append(row)
+    return {"step_months": 3, "start": TRAJECTORY_DATES[0][0], "stop": TRAJECTORY_DATES[-1][0], "rows": rows}
+
+
 def write_products(products, store):
-    """Products like `polecast run` writes: series, diagram, reversals, cycles, forecast, history, calibration."""
+    """Products like `polecast run` writes: series, diagram, reversals, cycles, forecast, history, trajectory,
+    calibration."""
     from pipeline.aggregator import latitude_time_diagram, polar_series
     from pipeline.ncio import write_netcdf
     from pipeline.config import load_config
@@ -127,6 +155,7 @@ def write_products(products, store):
         append_history(products / "forecast_history.jsonl",
                        history_entry(f, date, calibration="calibration.csv", calibration_digest=None,
                                      calibration_scale=None))
+    (products / "trajectory.json").write_text(json.dumps(trajectory_document(table, config)))
     (products / "config.json").write_text(json.dumps(config.to_dict(), default=list))
     summary = {"reversals": rev, "forecast": fc,
                "truth": {"reversals": {"north": NORTH_REVERSAL_YR, "south": SOUTH_REVERSAL_YR},

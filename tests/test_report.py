@@ -20,7 +20,7 @@ from pipeline.config import ConfigError, MeasureSettings
 from pipeline.report import (FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products,
                              render_report)
 from pipeline.report.html import table_html
-from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, PRECURSOR_STATE, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
+from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, PRECURSOR_STATE, TRAJECTORY_DATES, TRAJECTORY_TRUTH, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
                                  build_store, write_products)
 
 #: PNG file signature, PNG specification (ISO/IEC 15948:2004 / W3C PNG 2nd ed., sec. 5.2)
@@ -338,6 +338,39 @@ def test_history_figure_keeps_entries_without_a_target_on_a_line_of_their_own(bu
     assert list(unknown.get_ydata()) == [e["amplitude"] for e in entries[:2]]
 
 
+def test_trajectory_figure_draws_each_target_its_bands_its_truth_and_the_dates_without_a_forecast(built):
+    """Issue 10: amplitude with its 68 % and 95 % bands against data date (astropy decimalyear), one line per
+    target cycle, and each target's truth (trajectory.json of tests/_report_store.py: cycle 7's smoothed
+    maximum, cycle 8's synthetic truth) as a dashed line at its value over that target's dates; the date without
+    a forecast is a tick of its own, joined to no line."""
+    fig = built["rendered"].figures["trajectory"]
+    (ax,) = fig.axes
+    assert "sunspot number" in ax.get_ylabel() and "decimal year" in ax.get_xlabel()
+    rows = built["rendered"].products.trajectory["rows"]
+    made = [r for r in rows if r["amplitude"] is not None]
+    targets = sorted({r["target_cycle"] for r in made})
+    assert targets == sorted(TRAJECTORY_TRUTH)
+    for target in targets:
+        mine = [r for r in made if r["target_cycle"] == target]
+        (line,) = [ln for ln in ax.get_lines() if ln.get_gid() == f"trajectory:target:{target}"]
+        dates = _astropy_years(np.array([r["data_date"] for r in mine], dtype="datetime64[D]"))
+        np.testing.assert_allclose(line.get_xdata(), dates, atol=1e-6)
+        np.testing.assert_array_equal(line.get_ydata(), [r["amplitude"] for r in mine])
+        for level in ("68", "95"):
+            (band,) = [c for c in ax.collections if c.get_gid() == f"trajectory:target:{target}:band{level}"]
+            ys = band.get_paths()[0].vertices[:, 1]
+            assert ys.min() == pytest.approx(min(r[f"interval_{level}"][0] for r in mine), rel=1e-12)
+            assert ys.max() == pytest.approx(max(r[f"interval_{level}"][1] for r in mine), rel=1e-12)
+        (truth,) = [ln for ln in ax.get_lines() if ln.get_gid() == f"trajectory:truth:{target}"]
+        assert set(truth.get_ydata()) == {TRAJECTORY_TRUTH[target][0]}
+        lo, hi = truth.get_xdata()
+        assert lo < dates.min() and dates.max() < hi and hi - lo < 1.5   # over the target's own dates
+    (ticks,) = [ln for ln in ax.get_lines() if ln.get_gid() == "trajectory:unavailable"]
+    missing = [d for d, x, _, _ in TRAJECTORY_DATES if x is None]
+    np.testing.assert_allclose(ticks.get_xdata(), _astropy_years(np.array(missing, dtype="datetime64[D]")),
+                               atol=1e-6)
+
+
 def test_diagnostics_figure_draws_b0_coverage_and_the_skipped_files(built):
     """B0 and cap coverage of every frame; one bar per skip reason whose lengths add up to the two bad files
     of the archive (an empty file and a text file, tests/_report_store.py)."""
@@ -436,6 +469,7 @@ def test_bad_and_missing_products_are_left_out_with_a_note(built, tmp_path):
     shutil.copytree(built["products"], products)
     (products / "cycles.json").write_text("{ not json")
     (products / "forecast_history.jsonl").unlink()
+    (products / "trajectory.json").write_text("[1, 2]")
     (products / "calibration.csv").write_text("cycle,amplitude\n1,2\n")
     (products / "series.nc").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 64)  # a torn netCDF-4 file
     loaded = load_products(products)
@@ -444,11 +478,12 @@ def test_bad_and_missing_products_are_left_out_with_a_note(built, tmp_path):
     text = " ".join(_parse(rendered.index).text)
     assert "cycles.json: unreadable (JSONDecodeError" in text
     assert "forecast_history.jsonl: not in the products directory" in text
+    assert "trajectory.json: unreadable (ValueError: not a JSON object)" in text and "no forecast trajectory" in text
     assert "calibration.csv: unreadable (ValueError" in text and "series.nc: unreadable (OSError" in text
     assert "recomputed from the store (series) with the settings of the products' config.json" in text
     assert rendered.products.series.sizes["time"] == N_FRAMES   # recomputed from the store's 28 frames
     names = {p.name for p in (rendered.index.parent / "figures").iterdir()}
-    assert FIGURE_FILES["calibration"] not in names and FIGURE_FILES["history"] not in names
+    assert not {FIGURE_FILES[k] for k in ("calibration", "history", "trajectory")} & names
     assert set(rendered.figures) == {"series", "latitude_time", "diagnostics"}
 
 

@@ -41,7 +41,8 @@ from tests._demo_store import (DEMO, DEMO_CONFIG, REPO, demo_files, demo_measure
                                write_calibration, write_run_config, write_sunspots_before)
 from tests._ingest_archive import committed_rows
 
-FIGURES = ("polar_series.png", "latitude_time.png", "calibration.png", "forecast_history.png", "diagnostics.png")
+FIGURES = ("polar_series.png", "latitude_time.png", "calibration.png", "forecast_history.png",
+           "forecast_trajectory.png", "diagnostics.png")
 PRODUCTS = ("series.nc", "latitude_time.nc", "reversals.json", "cycles.json", "forecast.json",
             "forecast_history.jsonl", "calibration.csv", "config.json", "summary.json")
 #: the short span of the run tests: every demo frame from 2055 on (covers the last minimum, 2056.6, +-0.5 yr)
@@ -213,6 +214,52 @@ def test_demo_forecasts_on_the_phase_matched_route(demo_run):
     assert summary["sunspot_input"]["sunspot_number_version"] == load_config(DEMO_CONFIG).cycles.sunspot_number_version
     assert summary["sunspot_input"]["format_source"] == "declared"
     assert "note: sunspot file" not in demo_run.stderr     # a declared layout is no fallback: nothing to say
+
+
+def test_demo_trajectory_is_the_forecast_as_known_on_each_date(demo_run, tmp_path, capsys):
+    """Issue 10 (report: the forecast trajectory): trajectory.json holds the run's forecast as of every third
+    month start (configs/demo.toml) from the final dipole reversal to the newest frame.  A row is what a run
+    given only the frames and sunspot months from before its date forecasts (an independent run on the cut
+    data; causal as the issue asks).  Truths: target 1's smoothed maximum and target 2's next amplitude of the
+    synthetic star (truth.json, closed-loop truth; 0.05 = the rounding of the sunspot file's one decimal)."""
+    from pipeline.asof import as_of_instant
+
+    traj = _json(demo_run.out / "trajectory.json")
+    step = load_config(DEMO_CONFIG).run.trajectory_step_months
+    assert traj["step_months"] == step == 3
+    rows = traj["rows"]
+    months = [int(r["as_of"][:4]) * 12 + int(r["as_of"][5:7]) for r in rows]
+    assert all(r["as_of"].endswith("-01") for r in rows) and set(np_diff(months)) == {step}
+    final = _json(demo_run.out / "summary.json")["reversals"]["dipole"]["final"]["time"]
+    assert final < as_of_instant(rows[0]["as_of"]).decimal_year < final + step / 12
+    newest = demo_files()[-1].name          # kvm_YYYYMMDD_...: the last date is within a step of it, or the
+    newest_month = int(newest[4:8]) * 12 + int(newest[8:10])   # month start just after it
+    assert -1 <= newest_month - months[-1] < step
+    truth = _truth()
+    made = [r for r in rows if r["amplitude"] is not None]
+    assert {r["target_cycle"] for r in made} == {1, 2} and len(made) > len(rows) / 2
+    for r in made:
+        want = truth["cycles"][0]["maximum_value"] if r["target_cycle"] == 1 else truth["next_amplitude"]
+        assert r["truth_amplitude"] == pytest.approx(want, abs=0.05)
+        assert r["interval_95"][0] < r["interval_68"][0] < r["amplitude"] < r["interval_68"][1] < r["interval_95"][1]
+    for r in rows:
+        assert (r["amplitude"] is None) == (r["forecast_unavailable"] is not None)
+
+    row = next(r for r in made if r["phase"] == "reversal+4")
+    cut_at = as_of_instant(row["as_of"])
+    before = write_sunspots_before((tmp_path / "cut").mkdir() or tmp_path / "cut" / "sunspots.csv",
+                                   cut_at.decimal_year)
+    conf, out, _ = _cut_run(tmp_path / "cut", demo_run, "", "kvm_" + row["as_of"].replace("-", ""), sunspots=before)
+    assert main(["run", str(conf)]) == 0
+    capsys.readouterr()
+    fc = _json(out / "forecast.json")
+    for key in ("phase", "target_cycle", "data_date", "minimum_time", "minimum_status", "precursor",
+                "precursor_error", "amplitude", "interval_68", "interval_95"):
+        assert fc[key] == row[key], key
+
+
+def np_diff(values):
+    return [b - a for a, b in zip(values, values[1:])]
 
 
 # -- polecast run: incremental, exit codes ------------------------------------------------------------------
@@ -448,6 +495,12 @@ def test_run_exit_2_configuration_and_usage_errors_in_one_line(tmp_path, demo_ru
     conf.write_text('[run]\nscheduler = "localhost:8786"\n')
     code, err = run(conf)
     assert code == 2 and "run.scheduler" in err and "tcp://" in err
+    conf.write_text('[run]\ntrajectory_step_months = -1\n')
+    code, err = run(conf)
+    assert code == 2 and "run.trajectory_step_months" in err
+    conf.write_text('[run]\ntrajectory_start = "soon"\n')
+    code, err = run(conf)
+    assert code == 2 and "run.trajectory_start" in err and "YYYY-MM-DD" in err
     conf.write_text('[series]\nb0_method = "guess"\n')
     code, err = run(conf)
     assert code == 2 and "series.b0_method" in err and "'fill'" in err

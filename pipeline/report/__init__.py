@@ -25,6 +25,7 @@ Products read from ``products_dir`` (see :data:`PRODUCT_FILES`):
 - ``cycles.json``          the ``polecast cycles`` object
 - ``forecast.json``        the ``polecast forecast`` object
 - ``forecast_history.jsonl`` the append-only history (:mod:`pipeline.history`)
+- ``trajectory.json``      the as-of forecast trajectory (:func:`pipeline.run.forecast_trajectory`)
 - ``calibration.csv``      the calibration table used (``cycle,precursor,amplitude``)
 - ``config.json``          the configuration used (``Config.to_dict()``)
 - ``summary.json``         the run summary; for the demo with ``truth``
@@ -51,6 +52,7 @@ PRODUCT_FILES = {
     "cycles": "cycles.json",
     "forecast": "forecast.json",
     "history": "forecast_history.jsonl",
+    "trajectory": "trajectory.json",
     "calibration": "calibration.csv",
     "config": "config.json",
     "summary": "summary.json",
@@ -62,6 +64,7 @@ FIGURE_FILES = {
     "latitude_time": "latitude_time.png",
     "calibration": "calibration.png",
     "history": "forecast_history.png",
+    "trajectory": "forecast_trajectory.png",
     "diagnostics": "diagnostics.png",
 }
 
@@ -108,6 +111,7 @@ class Products:
     cycles: dict | None = None
     forecast: dict | None = None
     history: list | None = None
+    trajectory: dict | None = None
     calibration: object = None
     config: dict | None = None
     summary: dict | None = None
@@ -332,7 +336,8 @@ def draw_figures(products: Products, skip_reasons: dict, settings: ReportSetting
     dict
         Figure key (:data:`FIGURE_FILES`) -> :class:`matplotlib.figure.Figure`;
         ``calibration`` only for a table of three or more usable cycles,
-        ``history`` only for a non-empty history.
+        ``history`` only for a non-empty history, ``trajectory`` only for a
+        ``trajectory.json`` with rows.
     """
     from pipeline.report import figures
 
@@ -347,6 +352,8 @@ def draw_figures(products: Products, skip_reasons: dict, settings: ReportSetting
             method=(products.forecast or {}).get("method") or method)
     if products.history:
         drawn["history"] = figures.forecast_history_figure(products.history, settings)
+    if products.trajectory and products.trajectory.get("rows"):
+        drawn["trajectory"] = figures.forecast_trajectory_figure(products.trajectory, settings)
     drawn["diagnostics"] = figures.diagnostics_figure(products.series, skip_reasons, settings)
     return drawn
 

@@ -28,6 +28,7 @@ __all__ = [
     "latitude_time_figure",
     "calibration_figure",
     "forecast_history_figure",
+    "forecast_trajectory_figure",
     "TARGET_COLOURS",
     "diagnostics_figure",
     "figure_size_in",
@@ -396,7 +397,7 @@ def _rows_by_target(entries: list, date_key: str = "data_date") -> dict:
     return {k: sorted(v) for k, v in sorted(groups.items(), key=lambda kv: (kv[0] is None, kv[0] or 0))}
 
 
-def _draw_target(ax, rows: list, colour: str, label: str, gid: str) -> None:
+def _draw_target(ax, rows: list, colour: str, label: str, gid: str, errorbars: bool = True) -> None:
     """One target cycle: 95% and 68% bands (``gid`` ``GID:band95``/``GID:band68``), 95% error bars and the
     amplitude line (``gid`` ``GID``)."""
     arr = np.array(rows)
@@ -406,7 +407,9 @@ def _draw_target(ax, rows: list, colour: str, label: str, gid: str) -> None:
                         gid=f"{gid}:band95")
         ax.fill_between(t, lo68, hi68, color=colour, alpha=0.26, linewidth=0, label=f"{label}: 68% interval",
                         gid=f"{gid}:band68")
-    ax.errorbar(t, a, yerr=[a - lo95, hi95 - a], fmt="none", ecolor=colour, elinewidth=0.7, capsize=2.5, alpha=0.8)
+    if errorbars or t.size == 1:
+        ax.errorbar(t, a, yerr=[a - lo95, hi95 - a], fmt="none", ecolor=colour, elinewidth=0.7, capsize=2.5,
+                    alpha=0.8)
     ax.plot(t, a, "o-", color=colour, markersize=3.5, linewidth=1.3, label=f"{label}: forecast amplitude", gid=gid)
 
 
@@ -452,6 +455,92 @@ def forecast_history_figure(entries: list, settings) -> Figure:
     ax.set_xlabel("date of the newest data used (decimal year)")
     ax.set_ylabel("forecast amplitude (sunspot number)")
     ax.set_title(f"Forecast history ({n} update{'s' if n != 1 else ''}; one line per target cycle)", fontsize="small")
+    return fig
+
+
+_PHASE_SHORT = {"minimum": "min"}
+
+
+def _short_phase(phase) -> str:
+    text = str(phase)
+    return _PHASE_SHORT.get(text, text.replace("reversal+", "r+"))
+
+
+def forecast_trajectory_figure(trajectory: dict, settings) -> Figure:
+    """The forecast as it would have been made as of each date: amplitude with its 68% / 95% bands.
+
+    One line per target cycle against the date of the newest data used; the
+    truth of each target is a dashed line in its colour over the target's dates (the smoothed maximum
+    when the sunspot series has it, the synthetic star's next amplitude for a
+    synthetic archive); dates without a forecast are ticks along the bottom.
+
+    Parameters
+    ----------
+    trajectory : dict
+        ``trajectory.json`` (:func:`pipeline.run.forecast_trajectory` rows:
+        ``data_date``, ``target_cycle``, ``phase``, ``amplitude``,
+        ``interval_68``, ``interval_95``, ``truth_amplitude``,
+        ``truth_source``, ``forecast_unavailable``).
+    settings : pipeline.report.ReportSettings
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        ``gid`` ``trajectory:target:N`` on each amplitude line (bands
+        ``...:band68`` / ``...:band95``), ``trajectory:truth:N`` on each
+        truth line, ``trajectory:unavailable`` on the ticks of dates without
+        a forecast.
+    """
+    rows = [r for r in (trajectory or {}).get("rows") or [] if isinstance(r, dict)]
+    made = [r for r in rows if r.get("amplitude") is not None]
+    groups = _rows_by_target(made)
+    fig, axes = _new_figure(settings, 0.5)
+    ax = axes[0, 0]
+    if not groups:
+        _no_data(ax, "no as-of date gave a forecast")
+    else:
+        for k, (target, group) in enumerate(groups.items()):
+            colour = TARGET_COLOURS[k % len(TARGET_COLOURS)]
+            gid = f"trajectory:target:{'unknown' if target is None else target}"
+            _draw_target(ax, group, colour, _target_label(target), gid, errorbars=False)
+            mine = sorted((r for r in made if r.get("target_cycle") == target), key=lambda r: str(r["data_date"]))
+            last = None
+            for r in mine:   # the phase where it changes, so a reader sees which calibration each stretch used
+                if r.get("phase") != last:
+                    ax.annotate(_short_phase(r.get("phase")), (_entry_date_years(r), float(r["amplitude"])),
+                                textcoords="offset points", xytext=(0, 7), ha="center", fontsize="xx-small",
+                                color=colour)
+                    last = r.get("phase")
+            truths = {(r.get("truth_amplitude"), r.get("truth_source")) for r in mine
+                      if r.get("truth_amplitude") is not None}
+            t0, t1 = group[0][0], group[-1][0]
+            pad = max(0.03 * (t1 - t0), 0.15)
+            for amp, source in sorted(truths, key=lambda x: (x[0], str(x[1]))):
+                name = "truth (synthetic star)" if source == "truth.json" else "observed maximum"
+                ax.plot([t0 - pad, t1 + pad], [float(amp)] * 2, color=colour, linestyle="--", linewidth=1.4,
+                        label=f"{_target_label(target)}: {name} {float(amp):.1f}",
+                        gid=f"trajectory:truth:{'unknown' if target is None else target}")
+    missing = []
+    for r in rows:
+        if r.get("amplitude") is None:
+            try:
+                missing.append(_entry_date_years(r) if r.get("data_date") else
+                               float(_years(np.array([str(r["as_of"])[:10]], dtype="datetime64[D]"))[0]))
+            except (KeyError, TypeError, ValueError):
+                continue
+    if missing:
+        ax.plot(missing, np.zeros(len(missing)), "|", color="0.45", markersize=9, transform=ax.get_xaxis_transform(),
+                clip_on=False, label=f"no forecast ({len(missing)} date{'s' if len(missing) != 1 else ''})",
+                gid="trajectory:unavailable")
+    ax.ticklabel_format(axis="x", useOffset=False, style="plain")
+    if groups or missing:
+        ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    ax.set_xlabel("date of the newest data used (decimal year)")
+    ax.set_ylabel("forecast amplitude (sunspot number)")
+    step = (trajectory or {}).get("step_months")
+    ax.set_title(f"Forecast trajectory: as of {len(rows)} dates"
+                 + (f" every {step} months" if step else "") + f", {len(made)} with a forecast; labels: phase",
+                 fontsize="small")
     return fig
 
 

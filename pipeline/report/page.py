@@ -321,7 +321,17 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
                                      "of the newest data used, with its 68% and 95% intervals; one line per target "
                                      "cycle (updates forecasting different cycles are never joined).",
                                      "forecast history",
-                                     "no forecast history (forecast_history.jsonl missing or empty)")))
+                                     "no forecast history (forecast_history.jsonl missing or empty)")
+                     + "<h3>Forecast trajectory</h3>"
+                     + _figure_or_note(figures, "trajectory", "The forecast as it would have been made as of each "
+                                       "date, using only the data before it (the run's own phase rule and "
+                                       "calibration): amplitude with its 68% and 95% intervals against the date of "
+                                       "the newest data used, one line per target cycle, labelled with the phase; "
+                                       "dashed: the amplitude the target turned out to have (the synthetic star's "
+                                       "truth, or the smoothed maximum once the sunspot series has it); ticks at the "
+                                       "bottom: dates without a forecast.", "forecast trajectory",
+                                       "no forecast trajectory (trajectory.json: set [run] trajectory_step_months)")
+                     + _trajectory_notes(products.trajectory)))
     sections.append(("diagnostics", "Diagnostics",
                      figure_html(figures["diagnostics"], "B0 angle and polar-cap coverage per frame; skipped files "
                                  "grouped by reason.", "diagnostics")
@@ -333,6 +343,20 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
     meta = (f"Generated {generated_utc} by polecast {versions.get('polecast')} from store {store_path}"
             + (f" and products {products_dir}" if products_dir else "") + ".")
     return page_html(settings.title, meta, list(CAUTION_TEXTS), sections)
+
+
+def _trajectory_notes(trajectory: dict | None) -> str:
+    """The reasons of the trajectory's dates without a forecast, each distinct reason once with its dates."""
+    rows = (trajectory or {}).get("rows") or []
+    reasons: dict = {}
+    for r in rows:
+        if isinstance(r, dict) and r.get("amplitude") is None and r.get("forecast_unavailable"):
+            reasons.setdefault(str(r["forecast_unavailable"]), []).append(str(r.get("as_of")))
+    if not reasons:
+        return ""
+    items = [f"<li>as of {_esc_text(d[0])}" + (f" to {_esc_text(d[-1])} ({len(d)} dates)" if len(d) > 1 else "")
+             + f": {_esc_text(reason)}</li>" for reason, d in reasons.items()]
+    return "<h4>Dates without a forecast</h4><ul>" + "".join(items) + "</ul>"
 
 
 def _esc_text(text: str) -> str:
