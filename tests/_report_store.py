@@ -119,6 +119,27 @@ def trajectory_document(table, config) -> dict:
     return {"step_months": 3, "start": TRAJECTORY_DATES[0][0], "stop": TRAJECTORY_DATES[-1][0], "rows": rows}
 
 
+#: hindcast skill per phase (invented; the keys of pipeline.hindcast.SKILL_KEYS), saved as products/hindcasts/
+HINDCAST_SKILL = {
+    "reversal+2": {"n": 9, "r": 0.61, "rmse": 24.0, "bias": 14.0, "median_relative_error": 0.11, "coverage_68": 0.56,
+                   "coverage_95": 0.89},
+    "reversal+5": {"n": 9, "r": 0.80, "rmse": 16.5, "bias": 4.0, "median_relative_error": 0.03, "coverage_68": 0.67,
+                   "coverage_95": 1.0},
+    "minimum": {"n": 10, "r": 0.88, "rmse": 12.0, "bias": -1.5, "median_relative_error": -0.01, "coverage_68": 0.7,
+                "coverage_95": None},
+}
+
+
+def write_hindcasts(folder) -> None:
+    """``polecast hindcast --format json``-shaped objects of HINDCAST_SKILL (no rows), a trajectory and a bad file."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for phase, skill in HINDCAST_SKILL.items():
+        (folder / f"{phase}.json").write_text(json.dumps({"phase": phase, "rows": [], "skill": skill,
+                                                          "skipped": [], "notes": []}))
+    (folder / "trajectory.json").write_text(json.dumps({"phase": "auto", "rows": [], "skill": {"n": 0}}))
+    (folder / "zz-broken.json").write_text("{ not json")
+
+
 def write_products(products, store):
     """Products like `polecast run` writes: series, diagram, reversals, cycles, forecast, history, trajectory,
     calibration."""
@@ -156,6 +177,7 @@ def write_products(products, store):
                        history_entry(f, date, calibration="calibration.csv", calibration_digest=None,
                                      calibration_scale=None))
     (products / "trajectory.json").write_text(json.dumps(trajectory_document(table, config)))
+    write_hindcasts(products / "hindcasts")
     (products / "config.json").write_text(json.dumps(config.to_dict(), default=list))
     summary = {"reversals": rev, "forecast": fc,
                "truth": {"reversals": {"north": NORTH_REVERSAL_YR, "south": SOUTH_REVERSAL_YR},

@@ -20,7 +20,7 @@ from pipeline.config import ConfigError, MeasureSettings
 from pipeline.report import (FIGURE_FILES, VERSION_PACKAGES, ReportSettings, build_report, load_products,
                              render_report)
 from pipeline.report.html import table_html
-from tests._report_store import (HISTORY_UPDATES, HOSTILE_NAME, PRECURSOR_STATE, TRAJECTORY_DATES, TRAJECTORY_TRUTH, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
+from tests._report_store import (HINDCAST_SKILL, HISTORY_UPDATES, HOSTILE_NAME, PRECURSOR_STATE, TRAJECTORY_DATES, TRAJECTORY_TRUTH, N_FRAMES, NORTH_REVERSAL_YR, SOUTH_REVERSAL_YR,
                                  build_store, write_products)
 
 #: PNG file signature, PNG specification (ISO/IEC 15948:2004 / W3C PNG 2nd ed., sec. 5.2)
@@ -371,6 +371,29 @@ def test_trajectory_figure_draws_each_target_its_bands_its_truth_and_the_dates_w
                                atol=1e-6)
 
 
+def test_skill_figure_draws_each_phase_in_cycle_order_from_the_hindcast_products(built):
+    """Issue 10: the skill-against-phase figure from the hindcast products (tests/_report_store.py
+    HINDCAST_SKILL): phases in cycle order (reversal+2, reversal+5, then the minimum), RMSE and bias at their
+    values, coverage with the nominal 0.68 / 0.95 (a null value leaves that point out); a trajectory (phase
+    auto) and an unreadable file are left out with a note."""
+    fig = built["rendered"].figures["skill"]
+    top, bottom = fig.axes
+    order = ["reversal+2", "reversal+5", "minimum"]
+    assert [t.get_text().split("\n")[0] for t in bottom.get_xticklabels()] == order
+    for ax, key in ((top, "rmse"), (top, "bias"), (bottom, "coverage_68"), (bottom, "coverage_95")):
+        (line,) = [ln for ln in ax.get_lines() if ln.get_gid() == f"skill:{key}"]
+        want = [(i, HINDCAST_SKILL[p][key]) for i, p in enumerate(order) if HINDCAST_SKILL[p][key] is not None]
+        assert list(zip(line.get_xdata(), line.get_ydata())) == want, key
+    for level in (68, 95):
+        (nominal,) = [ln for ln in bottom.get_lines() if ln.get_gid() == f"skill:nominal_{level}"]
+        assert set(nominal.get_ydata()) == {level / 100}
+    notes = built["rendered"].products.notes
+    assert any(n.startswith("hindcasts/trajectory.json: phase 'auto' is not one phase") for n in notes)
+    assert any(n.startswith("hindcasts/zz-broken.json: unreadable (JSONDecodeError") for n in notes)
+    text = " ".join(_parse(built["index"]).text)
+    assert "Hindcast skill against phase" in text and "hindcasts/reversal+5.json" in text
+
+
 def test_diagnostics_figure_draws_b0_coverage_and_the_skipped_files(built):
     """B0 and cap coverage of every frame; one bar per skip reason whose lengths add up to the two bad files
     of the archive (an empty file and a text file, tests/_report_store.py)."""
@@ -451,6 +474,7 @@ def test_bare_store_recomputes_series_and_reversals(built, bare):
     text = " ".join(_parse(bare).text)
     assert "recomputed from the store (series, latitude-time diagram, reversals) with the default settings" in text
     assert "calibration figure left out" in text and "no forecast history" in text
+    assert "no hindcast product: the skill-against-phase figure is left out" in text
     # the constructed field changes sign at NORTH_REVERSAL_YR / SOUTH_REVERSAL_YR (tests/_report_store.py);
     # the recomputed final epochs are in the page's reversal table
     from pipeline.aggregator import polar_series
@@ -470,6 +494,7 @@ def test_bad_and_missing_products_are_left_out_with_a_note(built, tmp_path):
     (products / "cycles.json").write_text("{ not json")
     (products / "forecast_history.jsonl").unlink()
     (products / "trajectory.json").write_text("[1, 2]")
+    shutil.rmtree(products / "hindcasts")
     (products / "calibration.csv").write_text("cycle,amplitude\n1,2\n")
     (products / "series.nc").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 64)  # a torn netCDF-4 file
     loaded = load_products(products)
@@ -483,7 +508,7 @@ def test_bad_and_missing_products_are_left_out_with_a_note(built, tmp_path):
     assert "recomputed from the store (series) with the settings of the products' config.json" in text
     assert rendered.products.series.sizes["time"] == N_FRAMES   # recomputed from the store's 28 frames
     names = {p.name for p in (rendered.index.parent / "figures").iterdir()}
-    assert not {FIGURE_FILES[k] for k in ("calibration", "history", "trajectory")} & names
+    assert not {FIGURE_FILES[k] for k in ("calibration", "history", "trajectory", "skill")} & names
     assert set(rendered.figures) == {"series", "latitude_time", "diagnostics"}
 
 

@@ -29,6 +29,8 @@ Products read from ``products_dir`` (see :data:`PRODUCT_FILES`):
 - ``calibration.csv``      the calibration table used (``cycle,precursor,amplitude``)
 - ``config.json``          the configuration used (``Config.to_dict()``)
 - ``summary.json``         the run summary; for the demo with ``truth``
+- ``hindcasts/*.json``     hindcast products (:data:`HINDCAST_DIR`), saved from ``polecast hindcast
+  --format json``: one per phase, drawn as skill against phase
 """
 
 from __future__ import annotations
@@ -41,7 +43,8 @@ from pathlib import Path
 from pipeline import __version__
 from pipeline.config import ConfigError, check_number
 
-__all__ = ["ReportSettings", "Products", "RenderedReport", "PRODUCT_FILES", "FIGURE_FILES", "VERSION_PACKAGES",
+__all__ = ["ReportSettings", "Products", "RenderedReport", "PRODUCT_FILES", "FIGURE_FILES", "HINDCAST_DIR",
+           "VERSION_PACKAGES", "load_hindcasts",
            "build_report", "render_report", "draw_figures", "load_products", "package_versions"]
 
 #: product key -> file name inside the products directory
@@ -58,6 +61,10 @@ PRODUCT_FILES = {
     "summary": "summary.json",
 }
 
+#: folder of hindcast products inside the products directory: ``polecast hindcast --format json`` objects,
+#: one ``*.json`` per phase (e.g. ``hindcasts/reversal+4.json``), drawn as skill against phase
+HINDCAST_DIR = "hindcasts"
+
 #: figure key -> PNG file name inside ``OUT/figures``
 FIGURE_FILES = {
     "series": "polar_series.png",
@@ -65,6 +72,7 @@ FIGURE_FILES = {
     "calibration": "calibration.png",
     "history": "forecast_history.png",
     "trajectory": "forecast_trajectory.png",
+    "skill": "skill_phase.png",
     "diagnostics": "diagnostics.png",
 }
 
@@ -112,6 +120,7 @@ class Products:
     forecast: dict | None = None
     history: list | None = None
     trajectory: dict | None = None
+    hindcasts: list | None = None
     calibration: object = None
     config: dict | None = None
     summary: dict | None = None
@@ -178,6 +187,52 @@ def _history_elsewhere(root: Path, config: dict) -> Path | None:
     return path if path.is_absolute() else root / path
 
 
+def load_hindcasts(folder, notes: list) -> list | None:
+    """The hindcast products of a folder (``*.json``, :data:`HINDCAST_DIR`), one per phase; None when there is none.
+
+    Parameters
+    ----------
+    folder : path-like
+    notes : list
+        Gets a one-line note per file left out: unreadable, not a hindcast
+        object (``phase``, ``rows``, ``skill``), a trajectory (phase
+        ``auto``), or a phase already given by another file.
+
+    Returns
+    -------
+    list of dict or None
+        The objects with ``source`` (the file name) added, in file-name order.
+    """
+    from pipeline.regression import parse_phase
+
+    folder = Path(folder)
+    if not folder.is_dir():
+        return None
+    found, phases = [], {}
+    for path in sorted(folder.glob("*.json")):
+        label = f"{HINDCAST_DIR}/{path.name}"
+        try:
+            obj = _read_json(path)
+        except (OSError, ValueError) as exc:  # ValueError: UnicodeDecodeError, json.JSONDecodeError
+            notes.append(f"{label}: unreadable ({type(exc).__name__}: {' '.join(str(exc).split())[:200]}); left out")
+            continue
+        if not (isinstance(obj, dict) and isinstance(obj.get("skill"), dict) and isinstance(obj.get("rows"), list)):
+            notes.append(f"{label}: not a `polecast hindcast --format json` object (phase, rows, skill); left out")
+            continue
+        try:
+            phase = parse_phase(obj.get("phase"))
+        except ValueError:
+            notes.append(f"{label}: phase {obj.get('phase')!r} is not one phase (a trajectory?); left out of the "
+                         f"skill figure")
+            continue
+        if phase in phases:
+            notes.append(f"{label}: phase {phase} already given by {phases[phase]}; left out")
+            continue
+        phases[phase] = label
+        found.append(dict(obj, phase=phase, source=label))
+    return found or None
+
+
 def load_products(products_dir) -> Products:
     """Read every product of :data:`PRODUCT_FILES` that exists; a one-line note for each missing or bad one.
 
@@ -233,6 +288,7 @@ def load_products(products_dir) -> Products:
         except Exception as exc:  # not a bad file: a bug; say which product, then let it propagate
             exc.add_note(f"while reading the product {path}")
             raise
+    out.hindcasts = load_hindcasts(root / HINDCAST_DIR, out.notes)
     return out
 
 
@@ -337,7 +393,7 @@ def draw_figures(products: Products, skip_reasons: dict, settings: ReportSetting
         Figure key (:data:`FIGURE_FILES`) -> :class:`matplotlib.figure.Figure`;
         ``calibration`` only for a table of three or more usable cycles,
         ``history`` only for a non-empty history, ``trajectory`` only for a
-        ``trajectory.json`` with rows.
+        ``trajectory.json`` with rows, ``skill`` only with hindcast products.
     """
     from pipeline.report import figures
 
@@ -354,6 +410,8 @@ def draw_figures(products: Products, skip_reasons: dict, settings: ReportSetting
         drawn["history"] = figures.forecast_history_figure(products.history, settings)
     if products.trajectory and products.trajectory.get("rows"):
         drawn["trajectory"] = figures.forecast_trajectory_figure(products.trajectory, settings)
+    if products.hindcasts:
+        drawn["skill"] = figures.skill_phase_figure(products.hindcasts, settings)
     drawn["diagnostics"] = figures.diagnostics_figure(products.series, skip_reasons, settings)
     return drawn
 

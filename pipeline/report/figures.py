@@ -29,6 +29,7 @@ __all__ = [
     "calibration_figure",
     "forecast_history_figure",
     "forecast_trajectory_figure",
+    "skill_phase_figure",
     "TARGET_COLOURS",
     "diagnostics_figure",
     "figure_size_in",
@@ -541,6 +542,83 @@ def forecast_trajectory_figure(trajectory: dict, settings) -> Figure:
     ax.set_title(f"Forecast trajectory: as of {len(rows)} dates"
                  + (f" every {step} months" if step else "") + f", {len(made)} with a forecast; labels: phase",
                  fontsize="small")
+    return fig
+
+
+def _phase_order(phase: str) -> float:
+    """Where a phase falls in a cycle: reversal+L at L years, the minimum after every lag."""
+    from pipeline.precursor import phase_lag_years
+
+    lag = phase_lag_years(phase)
+    return math.inf if lag is None else lag
+
+
+def skill_phase_figure(hindcasts: list, settings) -> Figure:
+    """Hindcast skill against the phase the precursor was taken at: error and interval coverage.
+
+    Parameters
+    ----------
+    hindcasts : list of dict
+        ``polecast hindcast --format json`` objects, one per phase
+        (:func:`pipeline.report.load_hindcasts`): ``phase`` and ``skill``
+        (``n``, ``rmse``, ``bias``, ``coverage_68``, ``coverage_95``; see
+        :mod:`pipeline.hindcast`).
+    settings : pipeline.report.ReportSettings
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Phases on the x axis in cycle order (``reversal+L`` by L, then
+        ``minimum``); top panel RMSE and bias (sunspot number, ``gid``
+        ``skill:rmse`` / ``skill:bias``), bottom panel the 68% and 95%
+        coverage (``skill:coverage_68`` / ``skill:coverage_95``) with the
+        nominal levels dashed (``skill:nominal_68`` / ``skill:nominal_95``).
+        A phase whose skill value is null is left out of that line.
+
+    Notes
+    -----
+    Coverage is the fraction of hindcast truths inside the stated interval;
+    with n hindcasts its binomial standard error at level p is
+    :math:`\\sqrt{p(1-p)/n}` (common practice, no source), drawn as error bars.
+    """
+    items = sorted(hindcasts, key=lambda h: _phase_order(h["phase"]))
+    phases = [h["phase"] for h in items]
+    x = np.arange(len(items), dtype=np.float64)
+    fig, axes = _new_figure(settings, 0.62, 2, 1, sharex=True)
+    top, bottom = axes[0, 0], axes[1, 0]
+
+    def values(key):
+        v = np.array([math.nan if (h.get("skill") or {}).get(key) is None else float(h["skill"][key])
+                      for h in items])
+        return v
+
+    n = np.array([int((h.get("skill") or {}).get("n") or 0) for h in items])
+    for key, colour, marker in (("rmse", "#2166ac", "o"), ("bias", "#b2182b", "s")):
+        v = values(key)
+        ok = np.isfinite(v)
+        top.plot(x[ok], v[ok], marker=marker, color=colour, linewidth=1.2, label=key.upper() if key == "rmse"
+                 else "bias (forecast \u2212 truth)", gid=f"skill:{key}")
+    top.axhline(0.0, color="0.3", linewidth=0.7)
+    for level, colour, marker in ((68, "#d9822b", "o"), (95, "#542788", "s")):
+        v = values(f"coverage_{level}")
+        ok = np.isfinite(v) & (n > 0)
+        p = level / 100.0
+        se = np.sqrt(p * (1.0 - p) / np.where(n > 0, n, 1))   # binomial standard error (common practice)
+        bars = bottom.errorbar(x[ok], v[ok], yerr=se[ok], fmt=marker + "-", color=colour, ecolor=colour,
+                               elinewidth=0.7, capsize=3, linewidth=1.2,
+                               label=f"{level}% interval coverage (\u00b11 binomial s.e.)")
+        bars.lines[0].set_gid(f"skill:coverage_{level}")
+        bottom.axhline(p, color=colour, linestyle="--", linewidth=0.9, label=f"nominal {level}%",
+                       gid=f"skill:nominal_{level}")
+    bottom.set_ylim(-0.05, 1.05)
+    bottom.set_xticks(x, [f"{ph}\n(n={k})" for ph, k in zip(phases, n)], fontsize="x-small")
+    top.set_ylabel("error (sunspot number)")
+    bottom.set_ylabel("coverage (fraction)")
+    bottom.set_xlabel("phase of the precursor")
+    for ax in (top, bottom):
+        ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    top.set_title(f"Hindcast skill against phase ({len(items)} phase{'s' if len(items) != 1 else ''})\neach target "
+                  f"forecast as of the date its window was complete, calibrated without it", fontsize="small")
     return fig
 
 

@@ -331,7 +331,18 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
                                        "truth, or the smoothed maximum once the sunspot series has it); ticks at the "
                                        "bottom: dates without a forecast.", "forecast trajectory",
                                        "no forecast trajectory (trajectory.json: set [run] trajectory_step_months)")
-                     + _trajectory_notes(products.trajectory)))
+                     + _trajectory_notes(products.trajectory)
+                     + "<h3>Hindcast skill against phase</h3>"
+                     + _figure_or_note(figures, "skill", "Hindcasts of past cycles (each forecast as of the first "
+                                       "date its phase's window was complete, with data before then only and a "
+                                       "calibration without the target): RMSE and bias of the forecasts against "
+                                       "the amplitudes that followed, and the fraction of those amplitudes inside "
+                                       "the 68% and 95% intervals (dashed: the nominal levels), per phase.",
+                                       "hindcast skill against phase",
+                                       "no hindcast product: the skill-against-phase figure is left out (save "
+                                       "`polecast hindcast --phase PHASE --format json` outputs as "
+                                       "PRODUCTS/hindcasts/PHASE.json)")
+                     + _skill_table(products.hindcasts)))
     sections.append(("diagnostics", "Diagnostics",
                      figure_html(figures["diagnostics"], "B0 angle and polar-cap coverage per frame; skipped files "
                                  "grouped by reason.", "diagnostics")
@@ -343,6 +354,20 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
     meta = (f"Generated {generated_utc} by polecast {versions.get('polecast')} from store {store_path}"
             + (f" and products {products_dir}" if products_dir else "") + ".")
     return page_html(settings.title, meta, list(CAUTION_TEXTS), sections)
+
+
+def _skill_table(hindcasts: list | None) -> str:
+    """The skill of each hindcast product, one row per phase."""
+    if not hindcasts:
+        return ""
+    rows = []
+    for h in hindcasts:
+        k = h.get("skill") or {}
+        rows.append([h.get("phase"), k.get("n"), _f(k.get("r"), ".2f"), _f(k.get("rmse"), ".1f"),
+                     _f(k.get("bias"), "+.1f"), _f(k.get("median_relative_error"), "+.3f"),
+                     _f(k.get("coverage_68"), ".2f"), _f(k.get("coverage_95"), ".2f"), h.get("source")])
+    return table_html(["phase", "n", "r", "RMSE", "bias", "median relative error", "68% coverage",
+                       "95% coverage", "product"], rows, numeric={1, 2, 3, 4, 5, 6, 7})
 
 
 def _trajectory_notes(trajectory: dict | None) -> str:
