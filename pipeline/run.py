@@ -552,6 +552,8 @@ def _run_locked(config, truth: dict | None, months, table, notes: list, *, progr
     if rs.trajectory_step_months:
         write_json(out / "trajectory.json", _trajectory_document(records, months, table, config, series,
                                                                  reversals, truth))
+    elif (out / "trajectory.json").exists():
+        (out / "trajectory.json").unlink()   # made under another configuration: the report must not show it
 
     # 6. history: one entry per new forecast (data date, as-of date, phase, target, calibration), never rewritten
     history = Path(rs.history) if rs.history else out / "forecast_history.jsonl"

@@ -250,8 +250,11 @@ def test_demo_trajectory_is_the_forecast_as_known_on_each_date(demo_run, tmp_pat
     before = write_sunspots_before((tmp_path / "cut").mkdir() or tmp_path / "cut" / "sunspots.csv",
                                    cut_at.decimal_year)
     conf, out, _ = _cut_run(tmp_path / "cut", demo_run, "", "kvm_" + row["as_of"].replace("-", ""), sunspots=before)
+    out.mkdir()
+    (out / "trajectory.json").write_text("{}")   # left by an earlier configuration that asked for one
     assert main(["run", str(conf)]) == 0
     capsys.readouterr()
+    assert not (out / "trajectory.json").exists()   # this configuration asks for none: not shown stale
     fc = _json(out / "forecast.json")
     for key in ("phase", "target_cycle", "data_date", "minimum_time", "minimum_status", "precursor",
                 "precursor_error", "amplitude", "interval_68", "interval_95"):
