@@ -164,10 +164,15 @@ def write_products(products, store):
                           "maximum_value": 120.0}]}
     (products / "cycles.json").write_text(json.dumps(cycles))
     # invented calibration cycles of the synthetic star (demo data only)
-    (products / "calibration.csv").write_text(
-        "cycle,precursor,amplitude\nT1,1.1,82\nT2,1.6,121\nT3,0.9,70\nT4,2.0,150\nT5,1.4,99\nT6,1.8,131\n")
+    # (rows of the forecast's phase, as a run's calibration would hold them)
+    rows = ((1.1, 82), (1.6, 121), (0.9, 70), (2.0, 150), (1.4, 99), (1.8, 131))
+    (products / "calibration.csv").write_text("cycle,precursor,amplitude,phase\n" + "".join(
+        f"T{k + 1},{x},{a},{PRECURSOR_STATE['phase']}\n" for k, (x, a) in enumerate(rows)))
     table = read_calibration_csv(products / "calibration.csv")
-    fc = forecast_amplitude(table, 1.5, config.forecast, precursor_error=0.1).to_dict()
+    fc = forecast_amplitude(table, 1.5, config.forecast, precursor_error=0.1,
+                            phase=PRECURSOR_STATE["phase"]).to_dict()
+    # the history and trajectory entries were made at other phases: the same invented cycles stand in for them
+    table = dataclasses.replace(table, phase=("minimum",) * table.n_cycles)
     fc.update(PRECURSOR_STATE)
     (products / "forecast.json").write_text(json.dumps(fc))
     for date, x, target, phase in HISTORY_UPDATES:

@@ -712,3 +712,28 @@ def test_history_named_by_the_run_configuration_is_found(built, tmp_path):
     (products / "config.json").write_text(json.dumps(cfg))
     loaded = load_products(products)
     assert [e["data_date"] for e in loaded.history] == [u[0] for u in HISTORY_UPDATES]
+
+
+def test_calibration_figure_and_table_show_only_the_rows_of_the_forecast_phase(tmp_path):
+    """A table of several phases: the report shows the rows that the forecast regressed (issue 10: only
+    like is regressed on like), and says so; without a forecast phase every row is shown with a note
+    (project convention, no outside source)."""
+    from pipeline.report.page import calibration_rows_table
+
+    lines = ["cycle,precursor,amplitude,precursor_error,phase,scale"]
+    for k in range(6):
+        lines.append(f"{k + 1},{2.0 + k},{80 + 20 * k},0.1,minimum,S")
+        lines.append(f"{k + 1},{1.0 + 0.5 * k},{80 + 20 * k},0.1,reversal+3,S")
+    (tmp_path / "calibration.csv").write_text("\n".join(lines) + "\n")
+    (tmp_path / "forecast.json").write_text(json.dumps({"phase": "reversal+3", "amplitude": 120.0}))
+    products = load_products(tmp_path)
+    table = products.calibration
+    assert table.n_cycles == 6 and set(table.phase) == {"reversal+3"}
+    assert list(table.precursor) == [1.0 + 0.5 * k for k in range(6)]
+    assert any("6 rows of the forecast's phase 'reversal+3' are shown (of 12 rows" in n for n in products.notes)
+    page = calibration_rows_table(table)
+    assert page.count("reversal+3") == 6 and "minimum" not in page and "amplitude error" not in page
+    (tmp_path / "forecast.json").unlink()
+    whole = load_products(tmp_path)
+    assert whole.calibration.n_cycles == 12
+    assert any("no forecast names one" in n for n in whole.notes)

@@ -26,7 +26,8 @@ Products read from ``products_dir`` (see :data:`PRODUCT_FILES`):
 - ``forecast.json``        the ``polecast forecast`` object
 - ``forecast_history.jsonl`` the append-only history (:mod:`pipeline.history`)
 - ``trajectory.json``      the as-of forecast trajectory (:func:`pipeline.run.forecast_trajectory`)
-- ``calibration.csv``      the calibration table used (``cycle,precursor,amplitude``)
+- ``calibration.csv``      the calibration table used (``cycle,precursor,amplitude``, optional errors,
+                           ``phase`` and ``scale``; the rows of the forecast's phase are shown)
 - ``config.json``          the configuration used (``Config.to_dict()``)
 - ``summary.json``         the run summary; for the demo with ``truth``
 - ``hindcasts/*.json``     hindcast products (:data:`HINDCAST_DIR`), saved from ``polecast hindcast
@@ -233,6 +234,30 @@ def load_hindcasts(folder, notes: list) -> list | None:
     return found or None
 
 
+def _calibration_of_forecast_phase(table, forecast, notes: list):
+    """The calibration rows of the forecast's phase: the figure and the table show what was regressed.
+
+    A table without a forecast phase (no forecast product, or one from before
+    phases) is shown whole, with a note when it holds several phases.
+    """
+    if table is None:
+        return None
+    from pipeline.regression import select_phase
+
+    phases = sorted(set(table.phase)) if getattr(table, "phase", None) else []
+    phase = (forecast or {}).get("phase")
+    if phase:
+        chosen = select_phase(table, phase)
+        if len(phases) > 1 or chosen.n_cycles != table.n_cycles:
+            notes.append(f"calibration.csv: the {chosen.n_cycles} rows of the forecast's phase {phase!r} are shown "
+                         f"(of {table.n_cycles} rows, phases {', '.join(phases)})")
+        return chosen
+    if len(phases) > 1:
+        notes.append(f"calibration.csv holds the phases {', '.join(phases)} and no forecast names one: every row "
+                     f"is shown, although a forecast regresses only one phase")
+    return table
+
+
 def load_products(products_dir) -> Products:
     """Read every product of :data:`PRODUCT_FILES` that exists; a one-line note for each missing or bad one.
 
@@ -289,6 +314,7 @@ def load_products(products_dir) -> Products:
             exc.add_note(f"while reading the product {path}")
             raise
     out.hindcasts = load_hindcasts(root / HINDCAST_DIR, out.notes)
+    out.calibration = _calibration_of_forecast_phase(out.calibration, out.forecast, out.notes)
     return out
 
 

@@ -222,15 +222,16 @@ def calibration_rows_table(table) -> str:
     """The calibration cycles used."""
     if table is None:
         return note_html("no calibration product (calibration.csv): the calibration figure is left out")
-    has_err = table.precursor_error is not None
+    errors = [(name, arr) for name, arr in (("precursor error (G)", table.precursor_error),
+                                            ("amplitude error", table.amplitude_error)) if arr is not None]
+    phases = getattr(table, "phase", None) or ("",) * len(table.cycle)
     rows = []
     for i, name in enumerate(table.cycle):
-        row = [name, _f(float(table.precursor[i]), ".4g"), _f(float(table.amplitude[i]), ".1f")]
-        if has_err:
-            row += [_f(float(table.precursor_error[i]), ".3g"), _f(float(table.amplitude_error[i]), ".3g")]
+        row = [name, phases[i], _f(float(table.precursor[i]), ".4g"), _f(float(table.amplitude[i]), ".1f")]
+        row += [_f(float(arr[i]), ".3g") for _, arr in errors]
         rows.append(row)
-    headers = ["cycle", "precursor (G)", "amplitude"] + (["precursor error (G)", "amplitude error"] if has_err else [])
-    return table_html(headers, rows, numeric=set(range(1, len(headers))))
+    headers = ["cycle", "phase", "precursor (G)", "amplitude"] + [h for h, _ in errors]
+    return table_html(headers, rows, numeric=set(range(2, len(headers))))
 
 
 def skipped_table(skipped: list, max_rows: int) -> str:
