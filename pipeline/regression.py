@@ -246,8 +246,8 @@ class ForecastSettings:
     window_years : float
         Half-width of the window the precursor is averaged over (years).
     lag_years : float or None
-        Before the minimum: take the precursor this long after the final
-        reversal (years); None takes the newest full window.
+        The older spelling of ``phase = "reversal+L"``: when given, the phase
+        is ``reversal+lag_years`` (a different explicit ``phase`` is refused).
     through_origin : bool
         Fit amplitude = slope x precursor, without an intercept (methods in
         :data:`ORIGIN_METHODS`: ``ols`` and ``odr``).
@@ -287,6 +287,11 @@ class ForecastSettings:
         check_number("forecast.window_years", self.window_years, lo=0.0, hi=5.0, lo_open=True)
         if self.lag_years is not None:
             check_number("forecast.lag_years", self.lag_years, lo=0.0, hi=15.0)
+            as_phase = reversal_phase(self.lag_years)
+            if self.phase not in ("auto", as_phase):
+                raise ConfigError(f"forecast.lag_years: got {self.lag_years!r} with forecast.phase {self.phase!r}; "
+                                  f"lag_years means phase {as_phase!r}: give one of the two")
+            object.__setattr__(self, "phase", as_phase)  # never a key that is read and then ignored
         if not isinstance(self.through_origin, bool):
             raise ConfigError(f"forecast.through_origin: got {self.through_origin!r}; expected true or false")
         _check_origin_method(self.method, self.through_origin)

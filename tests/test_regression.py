@@ -411,6 +411,11 @@ def test_config_section(tmp_path):
         ForecastSettings(precursor_kind="octupole")
     with pytest.raises(ConfigError, match="forecast.lag_years: got -1"):
         ForecastSettings(lag_years=-1.0)
+    # the older key is the phase reversal+L, never a setting that is read and then ignored (project convention)
+    assert ForecastSettings(lag_years=4.0).phase == "reversal+4"
+    assert ForecastSettings(lag_years=4.0, phase="reversal+4").phase == "reversal+4"
+    with pytest.raises(ConfigError, match=r"forecast.lag_years: got 4.0 with forecast.phase 'minimum'"):
+        ForecastSettings(lag_years=4.0, phase="minimum")
 
 
 # ---- phase and scale -------------------------------------------------------------------------------
