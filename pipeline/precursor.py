@@ -44,7 +44,6 @@ __all__ = [
     "phase_lag_years",
     "choose_phase",
     "precursor_at_phase",
-    "precursor_for_forecast",
     "PRECURSOR_KINDS",
     "MIN_LAG_AFTER_REVERSAL_YEARS",
     "rotation_magnitude",
@@ -303,83 +302,6 @@ def latest_precursor(series, reversal_time_decimal_year: float, *, kind: str = "
     item = precursor_at(series, newest - w, kind=kind, window_years=w)
     item.update(reversal_time=float(reversal_time_decimal_year), lag_years=lag, notes=_lag_notes(lag),
                 newest_time=newest)
-    return item
-
-
-def _final_reversal_time(result):
-    """Decimal-year time of the final crossing of a ``find_reversals`` result, or None."""
-    final = result.get("final") if isinstance(result, dict) else getattr(result, "final", None)
-    if final is None:
-        return None
-    return float(final["time"] if isinstance(final, dict) else getattr(final, "time"))
-
-
-def precursor_for_forecast(series, cycles, settings, reversal_settings=None, smoother=None) -> dict:
-    """The precursor of the coming cycle from a PolarSeries and the cycle landmarks (before phases).
-
-    Superseded by :func:`pipeline.asof.forecast_inputs` (phase-matched, as of a
-    date); kept for callers of the earlier route.  At the last cycle minimum when the polar series covers its window; when
-    the final polarity reversal of the dipole lies after that minimum (the next
-    minimum still ahead), at ``settings.lag_years`` after the reversal, or from
-    the newest full window (Kumar et al. 2021, arXiv:2101.05013: usable from
-    about four years after the reversal).
-
-    Parameters
-    ----------
-    series : xarray.Dataset
-        A PolarSeries (:func:`pipeline.aggregator.polar_series`).
-    cycles : list of dict
-        :func:`pipeline.cycles.cycle_landmarks` (``minimum_time`` in decimal years).
-    settings : pipeline.regression.ForecastSettings
-        ``precursor_kind``, ``window_years``, ``lag_years``.
-    reversal_settings : pipeline.reversal.ReversalSettings, optional
-    smoother : pipeline.smoothing.Smoother, optional
-
-    Returns
-    -------
-    dict
-        ``precursor_gauss``, ``precursor_error_gauss``, ``route`` (``minimum`` or
-        ``after_reversal``), ``minimum_time``, ``reversal_time``, ``data_date``
-        (ISO date of the newest rotation), ``notes`` and the window details.
-
-    Raises
-    ------
-    ValueError
-        When no minimum is known or the series cannot give a precursor.
-    """
-    import dataclasses
-
-    from pipeline.reversal import ReversalSettings, find_reversals
-    from pipeline.timeutil import iso_date
-
-    if not cycles:
-        raise ValueError("no cycle minimum found; give a longer monthly sunspot series")
-    minimum = cycles[-1]["minimum_time"]
-    kind, w = settings.precursor_kind, settings.window_years
-    time, value, _ = rotation_magnitude(series, kind)
-    measured = np.isfinite(value)
-    if not measured.any():
-        raise ValueError("the polar series has no measured rotation")
-    newest = float(time[measured].max())
-    # only the epoch is needed here: no bootstrap
-    rev_settings = dataclasses.replace(reversal_settings or ReversalSettings(), n_bootstrap=0)
-    result = find_reversals(np.atleast_1d(decimal_year(series["rotation_time"].values)),
-                            np.asarray(series["dipole_br_rotation_gauss"].values, dtype=np.float64),
-                            rev_settings, smoother)
-    reversal = _final_reversal_time(result)
-    if reversal is not None and reversal > minimum:
-        if settings.lag_years is None:
-            item = latest_precursor(series, reversal, kind=kind, window_years=w)
-        else:
-            item = precursor_after_reversal(series, reversal, settings.lag_years, kind=kind, window_years=w)
-        item["route"] = "after_reversal"
-    else:
-        if minimum + w > newest:
-            raise ValueError(f"the polar series ends at {newest:.3f}, before the window of +-{w:g} yr around the "
-                             f"last cycle minimum {minimum:.3f} is complete; wait for more data")
-        item = precursor_at(series, minimum, kind=kind, window_years=w)
-        item.update(route="minimum", notes=[])
-    item.update(minimum_time=minimum, reversal_time=reversal, data_date=iso_date(float(newest)), kind=kind)
     return item
 
 
