@@ -149,8 +149,16 @@ def test_json_shape_and_irregular_iso_times():
     r_iso = find_reversals(from_decimal_year(t), x)
     r_dec = find_reversals(t, x)
     d = r_dec.to_dict()
-    assert set(d) == {"crossings", "final"}
-    assert set(d["crossings"][0]) == {"time", "low", "high", "time_iso", "sign_after"}
+    assert set(d) == {"crossings", "final", "level", "bootstrap_block_rotations", "members_skipped"}
+    assert set(d["crossings"][0]) == {"time", "low", "high", "level", "time_iso", "sign_after", "resolved", "reason",
+                                      "support", "noise_interval", "systematic_interval", "ensemble"}
+    c = d["crossings"][0]
+    assert c["level"] == 0.9 and c["noise_interval"]["level"] == 0.9 and c["systematic_interval"]["level"] == 0.9
+    assert c["resolved"] is True and c["reason"] is None and 0.5 < c["support"] <= 1.0
+    assert set(c["ensemble"]) == {"smoothing_width_x0.5", "smoothing_width_x2"}
+    assert c["low"] <= c["noise_interval"]["low"] and c["high"] >= c["noise_interval"]["high"]
+    assert c["low"] <= c["systematic_interval"]["low"] <= c["time"] <= c["systematic_interval"]["high"] <= c["high"]
+    assert d["bootstrap_block_rotations"] >= 13.0
     assert d["crossings"][0]["sign_after"] == -1
     assert d["final"] == d["crossings"][-1]
     assert r_iso.to_dict() == d  # datetime64 input gives the same answer
@@ -166,7 +174,8 @@ def test_polar_reversals_dipole_and_no_crossing():
     # dipole (N - S)/2 = 2.5 [tanh(a) + tanh(b)] crosses zero midway by symmetry: 2034.3
     assert abs(out["dipole"].final.time - 2034.3) < 0.05
     flat = find_reversals(T, np.full(T.size, 3.0))
-    assert flat.final is None and flat.to_dict() == {"crossings": [], "final": None}
+    d = flat.to_dict()
+    assert flat.final is None and d["crossings"] == [] and d["final"] is None and d["level"] == 0.9
 
 
 def test_too_few_points_and_mismatch():
