@@ -41,12 +41,13 @@ import numpy as np
 import xarray as xr
 
 from pipeline.b0 import (B0_METHODS, SERIES_METHODS, common_cap_latitude, common_profile_edges, fill_estimates,
-                         fill_hidden_bins, pole_estimates)
+                         fill_hidden_bins, fill_hidden_bins_with_error, pole_estimates)
 from pipeline.config import ConfigError, check_choice, check_number
 from pipeline.smoothing import SMOOTHING_METHODS, WIDTH_UNITS, Smoother, smooth
 from pipeline.timeutil import decimal_year, to_datetime64
 
-__all__ = ["SeriesSettings", "polar_series", "latitude_time_diagram", "filled_diagram", "band_cap_means",
+__all__ = ["SeriesSettings", "polar_series", "latitude_time_diagram", "filled_diagram", "filled_diagram_error",
+           "band_cap_means", "band_cap_fill_errors",
            "rotation_mid_time", "rotation_number", "BAND_BOUNDARIES_DEG"]
 
 #: Cap boundaries of the per-band reversal analysis (|latitude|, degrees).
@@ -200,6 +201,42 @@ def _group_mean(values, groups, n_groups):
     return out
 
 
+def _visible_part(total_err, fill_err):
+    """The frame error without its fill part: ``sqrt(e^2 - e_fill^2)`` (the total where no fill part)."""
+    f = np.where(np.isfinite(fill_err), fill_err, 0.0)
+    return np.sqrt(np.maximum(total_err * total_err - f * f, 0.0))
+
+
+def _group_mean_where(values, present, groups, n_groups):
+    """Per group, the mean of ``values`` over the frames where ``present`` is finite (NaN if none)."""
+    out = np.full(n_groups, np.nan)
+    for g in range(n_groups):
+        x = values[(groups == g) & np.isfinite(present) & np.isfinite(values)]
+        if x.size:
+            out[g] = x.mean()
+    return out
+
+
+def _with_fill(err, fill_err):
+    """``sqrt(err^2 + fill^2)`` where there is a fill error, else the error as it is."""
+    return np.where(np.isfinite(fill_err), np.hypot(np.where(np.isfinite(err), err, 0.0), fill_err), err)
+
+
+def _season_rotations(t_years, mean, err, max_gap_years):
+    """``"season"``: a pole's rotation means, the rotations it did not measure interpolated in time.
+
+    Returns the values, the errors of the measured rotations (NaN where
+    interpolated), the fill errors (0 where measured) and the flags of the
+    interpolated rotations (:func:`pipeline.b0.fill_hidden_bins_with_error`
+    on the one column of rotation means, their errors as the noise).
+    """
+    vals, ferr = fill_hidden_bins_with_error(t_years, mean[:, None], max_gap_years, value_errors=err[:, None])
+    vals, ferr = vals[:, 0], ferr[:, 0]
+    measured = np.isfinite(mean)
+    interp = ~measured & np.isfinite(vals)
+    return vals, np.where(measured, err, np.nan), np.where(np.isfinite(vals), ferr, np.nan), interp
+
+
 def _var(data, dims, units, long_name):
     return xr.Variable(dims, data, attrs={"units": units, "long_name": long_name})
 
@@ -236,15 +273,41 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
         ``frames_per_rotation`` and the smoothed ``*_br_smooth_gauss``.
         Gauss throughout; every variable has ``units`` and ``long_name``.
 
+    Fill errors (``"fill"`` and ``"season"``): per frame
+    ``north_br_fill_error_gauss``, ``south_br_fill_error_gauss``,
+    ``dipole_br_fill_error_gauss`` (``"fill"`` only: the part of the frame's
+    error that the filled hidden bins add, :func:`pipeline.b0.fill_estimates`;
+    0 where nothing was filled, NaN for the other methods), and per rotation
+    ``*_br_rotation_fill_error_gauss``: one-sigma errors of the rotation mean
+    that are correlated in time (neighbouring rotations share the frames the
+    fill came from), meant to be perturbed as one draw per block of
+    rotations, not per rotation.
+
     Notes
     -----
     Axial dipole proxy ``D = (N - S) / 2`` (DESIGN.md), error
     ``sqrt(eN^2 + eS^2) / 2``.  A rotation's mean is the plain mean of its
     frames; its error is the larger of the scatter's standard error
     ``std / sqrt(n)`` and the propagated frame errors ``sqrt(sum e^2) / n``
-    (a single frame keeps its own error).  The smoothed dipole is
-    ``(N_smooth - S_smooth) / 2`` (the smoothers are linear), so it exists
-    even where the two poles are seen in different rotations (``"season"``).
+    (a single frame keeps its own error), of the frames' visible-part
+    errors, combined in quadrature with the rotation's fill error.  For
+    ``"fill"`` the rotation's fill error is the mean of its frames' fill
+    errors, not divided by ``sqrt(n)``: the fills of one rotation share the
+    same neighbouring frames, so their errors are correlated.
+
+    ``"season"`` measures north and south in different rotations.  Each
+    pole's per-rotation value is its own rotation mean where it was measured,
+    else the value interpolated linearly in time between the nearest
+    rotations that measured it, at most ``fill_max_gap_years`` apart (or half
+    that from the end of the data; else NaN), with the fill error of
+    :func:`pipeline.b0.fill_hidden_bins_with_error` (the structure function of
+    that pole's rotation means, their errors as the noise; 0 where measured;
+    the flags ``*_rotation_interpolated`` mark the interpolated rotations).
+    The per-rotation dipole ``(N - S) / 2`` then exists on every rotation
+    where both poles have a value; the per-frame dipole of ``"season"`` stays
+    NaN (no frame measures both poles).  The smoothed series are the smoother
+    applied to these per-rotation values, and the smoothed dipole is
+    ``(N_smooth - S_smooth) / 2`` (the smoothers are linear).
     """
     settings = settings or SeriesSettings()
     good, skipped = _good_records(records)
@@ -261,8 +324,11 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
     south = np.array([e.south_br_gauss for e in est], dtype=float)
     north_err = np.array([e.north_br_error_gauss for e in est], dtype=float)
     south_err = np.array([e.south_br_error_gauss for e in est], dtype=float)
+    north_fill = np.array([e.north_fill_error_gauss for e in est], dtype=float)
+    south_fill = np.array([e.south_fill_error_gauss for e in est], dtype=float)
     dipole = 0.5 * (north - south)  # axial dipole proxy (N - S) / 2 (DESIGN.md)
     dipole_err = 0.5 * np.hypot(north_err, south_err)
+    dipole_fill = 0.5 * np.hypot(north_fill, south_fill)  # the two hemispheres' fills use different bins
     north_cov = np.array([_f(r.north_coverage) for r in good])
     south_cov = np.array([_f(r.south_coverage) for r in good])
     b0 = np.array([_f(r.b0_deg) for r in good])
@@ -279,16 +345,27 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
     groups = (np.floor(cr).astype(np.int64) - (rotations[0] if n else 0)) if n else np.array([], dtype=np.int64)
     nrot = rotations.size
     rot_time = rotation_mid_time(rotations)
-    rn, rn_err, n_count = _rotation_mean(north, north_err, groups, nrot)
-    rs, rs_err, s_count = _rotation_mean(south, south_err, groups, nrot)
+    # the rotation means' noise from the frames' visible-part errors; the fill part is added after,
+    # not reduced by sqrt(n) (the fills of one rotation share their neighbouring frames)
+    rn, rn_err, n_count = _rotation_mean(north, _visible_part(north_err, north_fill), groups, nrot)
+    rs, rs_err, s_count = _rotation_mean(south, _visible_part(south_err, south_fill), groups, nrot)
+    rn_fill = _group_mean_where(north_fill, north, groups, nrot)
+    rs_fill = _group_mean_where(south_fill, south, groups, nrot)
+    rn_interp = rs_interp = None
+    ty = np.atleast_1d(decimal_year(rot_time)) if nrot else np.array([])
+    if settings.b0_method == "season" and nrot:
+        rn, rn_err, rn_fill, rn_interp = _season_rotations(ty, rn, rn_err, settings.fill_max_gap_years)
+        rs, rs_err, rs_fill, rs_interp = _season_rotations(ty, rs, rs_err, settings.fill_max_gap_years)
+    rn_err = _with_fill(rn_err, rn_fill)
+    rs_err = _with_fill(rs_err, rs_fill)
     rd = 0.5 * (rn - rs)
     rd_err = 0.5 * np.hypot(rn_err, rs_err)
+    rd_fill = 0.5 * np.hypot(rn_fill, rs_fill)
     frames = np.bincount(groups, minlength=nrot) if n else np.zeros(0, dtype=np.int64)
     rcov_n = _group_mean(north_cov, groups, nrot)
     rcov_s = _group_mean(south_cov, groups, nrot)
 
     smoother = settings.smoother
-    ty = np.atleast_1d(decimal_year(rot_time)) if nrot else np.array([])
     sn = smooth(ty, rn, ty, smoother) if nrot else np.array([])
     ss = smooth(ty, rs, ty, smoother) if nrot else np.array([])
     sd = 0.5 * (sn - ss)
@@ -302,6 +379,12 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
         "north_br_error_gauss": _var(north_err, ("time",), G, "standard error of north_br_gauss"),
         "south_br_error_gauss": _var(south_err, ("time",), G, "standard error of south_br_gauss"),
         "dipole_br_error_gauss": _var(dipole_err, ("time",), G, "standard error of dipole_br_gauss"),
+        "north_br_fill_error_gauss": _var(north_fill, ("time",), G, "part of north_br_error_gauss from the "
+                                          "B0 fill of hidden bins (0 nothing filled, NaN other methods)"),
+        "south_br_fill_error_gauss": _var(south_fill, ("time",), G, "part of south_br_error_gauss from the "
+                                          "B0 fill of hidden bins (0 nothing filled, NaN other methods)"),
+        "dipole_br_fill_error_gauss": _var(dipole_fill, ("time",), G, "part of dipole_br_error_gauss from the "
+                                           "B0 fill of hidden bins (0 nothing filled, NaN other methods)"),
         "north_coverage": _var(north_cov, ("time",), "1", "measured fraction of the north cap area"),
         "south_coverage": _var(south_cov, ("time",), "1", "measured fraction of the south cap area"),
         "b0_deg": _var(b0, ("time",), "deg", "heliographic latitude of the observer (B0)"),
@@ -311,6 +394,15 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
         "north_br_rotation_error_gauss": _var(rn_err, ("rotation",), G, "standard error of north rotation mean"),
         "south_br_rotation_error_gauss": _var(rs_err, ("rotation",), G, "standard error of south rotation mean"),
         "dipole_br_rotation_error_gauss": _var(rd_err, ("rotation",), G, "standard error of dipole rotation mean"),
+        "north_br_rotation_fill_error_gauss": _var(
+            rn_fill, ("rotation",), G, "one-sigma fill error of the north rotation mean, correlated between "
+                                       "neighbouring rotations (included in north_br_rotation_error_gauss)"),
+        "south_br_rotation_fill_error_gauss": _var(
+            rs_fill, ("rotation",), G, "one-sigma fill error of the south rotation mean, correlated between "
+                                       "neighbouring rotations (included in south_br_rotation_error_gauss)"),
+        "dipole_br_rotation_fill_error_gauss": _var(
+            rd_fill, ("rotation",), G, "one-sigma fill error of the dipole rotation mean, correlated between "
+                                       "neighbouring rotations (included in dipole_br_rotation_error_gauss)"),
         "north_rotation_coverage": _var(rcov_n, ("rotation",), "1", "mean north cap coverage per rotation"),
         "south_rotation_coverage": _var(rcov_s, ("rotation",), "1", "mean south cap coverage per rotation"),
         "frames_per_rotation": _var(frames.astype(np.int64), ("rotation",), "1", "frames in the rotation"),
@@ -343,6 +435,11 @@ def polar_series(records, settings: SeriesSettings | None = None) -> xr.Dataset:
         attrs["fill_max_gap_years"] = float(settings.fill_max_gap_years)
     if method == "season":
         attrs["season_threshold_deg"] = float(settings.season_threshold_deg)
+        attrs["fill_max_gap_years"] = float(settings.fill_max_gap_years)
+        for pole, flag in (("north", rn_interp), ("south", rs_interp)):
+            data_vars[f"{pole}_rotation_interpolated"] = _var(
+                (flag if flag is not None else np.zeros(nrot, bool)).astype(np.int8), ("rotation",), "1",
+                f"1 where the {pole} rotation value is interpolated in time from the {pole} pole's seasons")
     return xr.Dataset(data_vars, coords=coords, attrs=attrs)
 
 
@@ -425,6 +522,25 @@ def latitude_time_diagram(records, settings: SeriesSettings | None = None) -> xr
                "frames_left_out": skipped})
 
 
+def _filled_diagram_parts(diagram, max_gap_years, min_abs_latitude_deg, min_seen_fraction):
+    """Filled values, their fill errors (0 measured, NaN unfilled or outside the filled range), resolved."""
+    vals = np.array(diagram.values, dtype=float)
+    errs = np.where(np.isfinite(vals), 0.0, np.nan)
+    seen = np.isfinite(vals).mean(axis=1)
+    resolved = seen >= min_seen_fraction
+    vals[~resolved] = np.nan
+    errs[~resolved] = np.nan
+    t = np.atleast_1d(decimal_year(diagram["rotation_time"].values))
+    lo = diagram["latitude_lower"].values
+    hi = diagram["latitude_upper"].values
+    for sel in (np.flatnonzero(lo >= min_abs_latitude_deg - 1e-9),
+                np.flatnonzero(hi <= -min_abs_latitude_deg + 1e-9)[::-1]):
+        if sel.size:
+            v, e = fill_hidden_bins_with_error(t, vals[sel].T, max_gap_years)
+            vals[sel], errs[sel] = v.T, e.T
+    return vals, errs, resolved
+
+
 def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_latitude_deg: float = 50.0,
                    min_seen_fraction: float = 0.15):
     """The latitude-time diagram with hidden high-latitude bins filled as the ``"fill"`` B0 method does.
@@ -433,7 +549,8 @@ def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_la
     per rotation by :func:`pipeline.b0.fill_hidden_bins` (latitude holes, then
     time within ``max_gap_years``, then toward the pole); other bins are kept
     as measured.  Use it for band cap means consistent with the default polar
-    series; show the measured diagram itself.
+    series; show the measured diagram itself.  :func:`filled_diagram_error`
+    gives the filled bins' one-sigma errors.
 
     A bin measured in fewer than ``min_seen_fraction`` of the rotations is
     beyond the images' resolution (a few pixels near the pole): its own values
@@ -446,23 +563,93 @@ def filled_diagram(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_la
     xarray.DataArray
         Same shape and coordinates plus ``resolved`` (latitude), ``attrs["filled"] = True``.
     """
-    vals = np.array(diagram.values, dtype=float)
-    if vals.size == 0:
+    if diagram.values.size == 0:
         return diagram.copy()
-    seen = np.isfinite(vals).mean(axis=1)
-    resolved = seen >= min_seen_fraction
-    vals[~resolved] = np.nan
-    t = np.atleast_1d(decimal_year(diagram["rotation_time"].values))
-    lo = diagram["latitude_lower"].values
-    hi = diagram["latitude_upper"].values
-    for sel in (np.flatnonzero(lo >= min_abs_latitude_deg - 1e-9),
-                np.flatnonzero(hi <= -min_abs_latitude_deg + 1e-9)[::-1]):
-        if sel.size:
-            vals[sel] = fill_hidden_bins(t, vals[sel].T, max_gap_years).T
+    vals, _, resolved = _filled_diagram_parts(diagram, max_gap_years, min_abs_latitude_deg, min_seen_fraction)
     out = diagram.copy(data=vals).assign_coords(resolved=("latitude", resolved))
     out.attrs = dict(diagram.attrs, filled=True, fill_max_gap_years=float(max_gap_years),
                      min_seen_fraction=float(min_seen_fraction))
     return out
+
+
+def filled_diagram_error(diagram: xr.DataArray, max_gap_years: float = 1.5, min_abs_latitude_deg: float = 50.0,
+                         min_seen_fraction: float = 0.15):
+    """One-sigma fill error of every bin of :func:`filled_diagram` (same arguments), gauss.
+
+    Returns
+    -------
+    xarray.DataArray
+        Same shape and coordinates as the diagram plus ``resolved``; 0 where the
+        bin was measured (and resolved), the error of
+        :func:`pipeline.b0.fill_hidden_bins_with_error` where it was filled, NaN
+        where :func:`filled_diagram` has no value.  Feed it to
+        :func:`band_cap_fill_errors`.  The errors of neighbouring rotations are
+        correlated (they share the rotations the fill came from).
+    """
+    if diagram.values.size == 0:
+        return diagram.copy()
+    _, errs, resolved = _filled_diagram_parts(diagram, max_gap_years, min_abs_latitude_deg, min_seen_fraction)
+    out = diagram.copy(data=errs).assign_coords(resolved=("latitude", resolved))
+    out.name = "br_fill_error_gauss"
+    out.attrs = dict(diagram.attrs, units="G", long_name="one-sigma fill error of the longitude-averaged radial field",
+                     filled=True, fill_max_gap_years=float(max_gap_years), min_seen_fraction=float(min_seen_fraction))
+    return out
+
+
+def _band_average(diagram: xr.DataArray, boundaries_deg, min_coverage: float, what: str) -> dict:
+    """Zone-area-weighted means over the bins with data of each band (see :func:`band_cap_means`)."""
+    check_number("min_coverage", min_coverage, lo=0.0, hi=1.0)
+    lo = diagram["latitude_lower"].values
+    hi = diagram["latitude_upper"].values
+    zone = np.abs(np.sin(np.radians(hi)) - np.sin(np.radians(lo)))
+    vals = diagram.values
+    resolved = diagram["resolved"].values if "resolved" in diagram.coords else np.ones(lo.size, dtype=bool)
+    out = {"north": {}, "south": {}}
+    for L in boundaries_deg:
+        for pole, sel in (("north", lo >= L - 1e-9), ("south", hi <= -L + 1e-9)):
+            v = vals[sel]
+            a = zone[sel][:, None] * np.isfinite(v)
+            total = zone[sel].sum()
+            num = np.nansum(np.where(np.isfinite(v), v, 0.0) * a, axis=0)
+            den = a.sum(axis=0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                m = np.where((den > 0) & (den >= min_coverage * total), num / np.where(den > 0, den, 1.0), np.nan)
+            if zone[sel][resolved[sel]].sum() < min_coverage * total:  # a band beyond the resolution
+                m = np.full_like(m, np.nan)
+            out[pole][float(L)] = xr.DataArray(
+                m, dims=("rotation",), coords={"rotation": diagram["rotation"],
+                                               "rotation_time": diagram["rotation_time"]},
+                attrs={"units": "G", "long_name": f"{pole} cap {what} above |lat| {L:g} deg"})
+    return out
+
+
+def band_cap_fill_errors(error_diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
+                         min_coverage: float = 0.2) -> dict:
+    """One-sigma fill error of each band's cap mean, per rotation, from :func:`filled_diagram_error`.
+
+    Parameters
+    ----------
+    error_diagram : xarray.DataArray
+        From :func:`filled_diagram_error` (same arguments as the
+        :func:`filled_diagram` the means come from).
+    boundaries_deg, min_coverage
+        As :func:`band_cap_means`, which gives the means these errors belong to.
+
+    Returns
+    -------
+    dict
+        ``{"north": {L: DataArray(rotation)}, "south": {...}}`` in gauss, the
+        shape of :func:`band_cap_means`; NaN exactly where it is NaN, 0 where no
+        bin of the band was filled.
+
+    Notes
+    -----
+    ``e_L = sum_b e_b dA_b / sum_b dA_b`` over the bins with a value: the
+    bins' fill errors taken as fully correlated within a rotation (they share
+    their neighbouring rotations), which is conservative.  The errors of
+    neighbouring rotations are correlated too.
+    """
+    return _band_average(error_diagram, boundaries_deg, min_coverage, "mean Br fill error")
 
 
 def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
@@ -496,26 +683,4 @@ def band_cap_means(diagram: xr.DataArray, boundaries_deg=BAND_BOUNDARIES_DEG,
     hat-box theorem).  On a :func:`filled_diagram`, a band whose resolved bins
     cover less than ``min_coverage`` of its area has no mean.
     """
-    check_number("min_coverage", min_coverage, lo=0.0, hi=1.0)
-    lo = diagram["latitude_lower"].values
-    hi = diagram["latitude_upper"].values
-    zone = np.abs(np.sin(np.radians(hi)) - np.sin(np.radians(lo)))
-    vals = diagram.values
-    resolved = diagram["resolved"].values if "resolved" in diagram.coords else np.ones(lo.size, dtype=bool)
-    out = {"north": {}, "south": {}}
-    for L in boundaries_deg:
-        for pole, sel in (("north", lo >= L - 1e-9), ("south", hi <= -L + 1e-9)):
-            v = vals[sel]
-            a = zone[sel][:, None] * np.isfinite(v)
-            total = zone[sel].sum()
-            num = np.nansum(np.where(np.isfinite(v), v, 0.0) * a, axis=0)
-            den = a.sum(axis=0)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                m = np.where((den > 0) & (den >= min_coverage * total), num / np.where(den > 0, den, 1.0), np.nan)
-            if zone[sel][resolved[sel]].sum() < min_coverage * total:  # a band beyond the resolution
-                m = np.full_like(m, np.nan)
-            out[pole][float(L)] = xr.DataArray(
-                m, dims=("rotation",), coords={"rotation": diagram["rotation"],
-                                               "rotation_time": diagram["rotation_time"]},
-                attrs={"units": "G", "long_name": f"{pole} cap mean Br above |lat| {L:g} deg"})
-    return out
+    return _band_average(diagram, boundaries_deg, min_coverage, "mean Br")
