@@ -213,7 +213,8 @@ def _truth_summary(path: str) -> dict | None:
         raise ConfigError(f"run.truth: {path} has no final_reversals object; give the truth.json that "
                           f"`polecast synth` wrote, or leave run.truth empty")
     finals = truth["final_reversals"]
-    return {"reversals": {"north": finals.get("north"), "south": finals.get("south")},
+    dipole = finals.get("dipole", truth.get("final_dipole_reversal"))
+    return {"reversals": {"north": finals.get("north"), "south": finals.get("south"), "dipole": dipole},
             "next_amplitude": truth.get("next_amplitude"),
             "precursor_at_last_minimum": truth.get("precursor_at_last_minimum"),
             "precursor_at_last_minimum_error": truth.get("precursor_at_last_minimum_error"),
@@ -492,14 +493,14 @@ def _trajectory_document(records, months, table, config, series, reversals, trut
 
 def _run_locked(config, truth: dict | None, months, table, notes: list, *, progress: bool, on_skip) -> RunResult:
     """The stages of :func:`run_pipeline`, with the run lock held."""
-    from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
+    from pipeline.aggregator import latitude_time_diagram, polar_series
     from pipeline.asof import forecast_inputs
     from pipeline.batch import ingest
     from pipeline.cli.cycles import landmarks_document
     from pipeline.history import append_history, history_entry
     from pipeline.ncio import write_netcdf
-    from pipeline.reversal import band_reversals, series_reversals
     from pipeline.store import check_measure_settings, file_digest, open_store
+    from pipeline.systematics import store_reversals
 
     rs: RunSettings = config.run
     calibration = Path(rs.calibration)
@@ -525,12 +526,7 @@ def _run_locked(config, truth: dict | None, months, table, notes: list, *, progr
     write_netcdf(diagram, out / "latitude_time.nc")
 
     # 3. reversals (poles, dipole, latitude bands)
-    smoother = config.series.smoother
-    reversals = {k: v.to_dict() for k, v in series_reversals(series, config.reversals, smoother).items()}
-    for_bands = (filled_diagram(diagram, config.series.fill_max_gap_years)
-                 if config.series.b0_method == "fill" else diagram)
-    bands = band_reversals(band_cap_means(for_bands), config.reversals, smoother)
-    reversals["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
+    reversals = store_reversals(records, series, config)   # noise bootstrap and the systematic ensemble
     write_json(out / "reversals.json", reversals)
 
     # 4. cycle landmarks (all the sunspot months)

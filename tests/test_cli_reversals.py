@@ -132,10 +132,20 @@ def test_reversals_csv_json_format(tmp_path, capsys):
     out = _json(capsys)
     assert set(out) == {"north", "south", "dipole"}
     for name in out:
-        assert set(out[name]) == {"crossings", "final"}
+        # issue 11's contract: the total interval in low/high, its parts and the ensemble beside it, each
+        # interval with its level
+        assert set(out[name]) == {"crossings", "final", "level", "bootstrap_block_rotations", "members_skipped"}
+        assert out[name]["level"] == 0.9 and out[name]["bootstrap_block_rotations"] >= 13
         for c in out[name]["crossings"]:
-            assert set(c) == {"time", "low", "high", "time_iso", "sign_after"}
+            assert set(c) == {"time", "low", "high", "level", "time_iso", "sign_after", "resolved", "reason",
+                              "support", "noise_interval", "systematic_interval", "ensemble"}
             assert c["sign_after"] in (1, -1) and len(c["time_iso"]) == 10
+            assert c["resolved"] is True and 0.0 < c["support"] <= 1.0
+            n, sy = c["noise_interval"], c["systematic_interval"]
+            assert n["level"] == sy["level"] == c["level"] == 0.9
+            assert c["low"] <= min(n["low"], sy["low"]) and c["high"] >= max(n["high"], sy["high"])
+            # a series table has no records: only the smoothing-width members apply
+            assert set(c["ensemble"]) == {"smoothing_width_x0.5", "smoothing_width_x2"}
     assert abs(out["north"]["final"]["time"] - 2034.2) < 2 * ROT_YR  # seeded truth
     assert abs(out["south"]["final"]["time"] - 2034.8) < 2 * ROT_YR
 
@@ -149,6 +159,7 @@ def test_reversals_csv_gap_empty_cells_bad_row_and_text(tmp_path, capsys):
     cap = capsys.readouterr()
     assert "line 12: unreadable row" in cap.err
     assert "north: 1 reversal(s)" in cap.out and "final: 2034-" in cap.out
+    assert cap.out.startswith("intervals: 90%") and "90% [" in cap.out and "noise [" in cap.out
 
 
 def test_reversals_usage_errors(tmp_path, capsys):

@@ -34,6 +34,8 @@ def add_parser(sub) -> None:
                    help="a new sign must hold this long to count (default 0.4)")
     p.add_argument("--confidence", type=float, metavar="P", help="interval coverage (default 0.9)")
     p.add_argument("--n-bootstrap", type=int, metavar="N", help="bootstrap replicates (default 300)")
+    p.add_argument("--no-systematics", action="store_true",
+                   help="leave out the ensemble of analysis choices (noise interval only)")
     add_series_options(p)
     p.set_defaults(func=run)
 
@@ -59,19 +61,31 @@ def read_series_csv(path):
     return table.time_decimal_year, table.north_br_gauss, table.south_br_gauss, list(table.problems)
 
 
+def _pct(level) -> str:
+    return f"{100 * float(level):g}%"
+
+
 def _text_block(name, res: dict, indent="") -> list[str]:
     lines = [f"{indent}{name}: {len(res['crossings'])} reversal(s)"]
     for c in res["crossings"]:
-        lines.append(f"{indent}  {c['time_iso']}  {c['time']:.3f}  [{c['low']:.3f}, {c['high']:.3f}]  "
-                     f"sign after {c['sign_after']:+d}")
+        line = (f"{indent}  {c['time_iso']}  {c['time']:.3f}  {_pct(c['level'])} [{c['low']:.3f}, {c['high']:.3f}]  "
+                f"sign after {c['sign_after']:+d}")
+        if c["resolved"]:
+            n, s = c["noise_interval"], c["systematic_interval"]
+            line += (f"  (noise [{n['low']:.3f}, {n['high']:.3f}], systematic [{s['low']:.3f}, {s['high']:.3f}], "
+                     f"support {c['support']:.2f})")
+        else:
+            line += f"  (not resolved: {c['reason']})"
+        lines.append(line)
     fin = res["final"]
     lines.append(f"{indent}  final: {fin['time_iso'] if fin else 'none'}")
     return lines
 
 
 def format_text(out: dict) -> str:
-    """Human-readable summary of the reversal JSON object."""
-    lines = []
+    """Human-readable summary of the reversal JSON object (every interval with its level)."""
+    level = out.get("north", {}).get("level", 0.9)
+    lines = [f"intervals: {_pct(level)} (total = noise and systematic ensemble combined in quadrature)"]
     for name in ("north", "south", "dipole"):
         lines += _text_block(name, out[name])
     for pole, bands in out.get("bands", {}).items():
@@ -82,7 +96,7 @@ def format_text(out: dict) -> str:
 
 
 def run(args) -> int:
-    from pipeline.reversal import band_reversals, polar_reversals, series_reversals
+    from pipeline.reversal import polar_reversals
 
     prog = "polecast reversals"
     if (args.store is None) == (args.series is None):
@@ -90,7 +104,8 @@ def run(args) -> int:
         return EXIT_USAGE
     config = load_config(args.config, series=series_overrides(args),
                          reversals={"min_persistence_years": args.persistence_years,
-                                    "confidence": args.confidence, "n_bootstrap": args.n_bootstrap})
+                                    "confidence": args.confidence, "n_bootstrap": args.n_bootstrap,
+                                    "systematics": False if args.no_systematics else None})
     smoother = config.series.smoother
     problems: list[str] = []
     if args.series is not None:
@@ -102,19 +117,14 @@ def run(args) -> int:
         res = polar_reversals(t, north, south, config.reversals, smoother)
         out = {k: v.to_dict() for k, v in res.items()}
     else:
-        from pipeline.aggregator import band_cap_means, filled_diagram, latitude_time_diagram, polar_series
+        from pipeline.aggregator import polar_series
+        from pipeline.systematics import store_reversals
 
         records, err = load_records(args.store, given_measure(args, config))
         if records is None:
             print(f"{prog}: {err}", file=sys.stderr)
             return EXIT_USAGE
-        ds = polar_series(records, config.series)
-        out = {k: v.to_dict() for k, v in series_reversals(ds, config.reversals, smoother).items()}
-        diagram = latitude_time_diagram(records, config.series)
-        if config.series.b0_method == "fill":  # band means consistent with the polar series
-            diagram = filled_diagram(diagram, config.series.fill_max_gap_years)
-        bands = band_reversals(band_cap_means(diagram), config.reversals, smoother)
-        out["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
+        out = store_reversals(records, polar_series(records, config.series), config)
         if not records:
             problems.append(f"{args.store}: the store has no measured frames")
     if args.format == "json":

@@ -49,7 +49,9 @@ def _on_skip_printer():
 
 
 def _fmt_crossing(c):
-    return f"{c['time_iso']} ({c['time']:.3f}, interval {c['low']:.3f}-{c['high']:.3f})"
+    level = f"{100 * float(c.get('level', 0.9)):g}%"
+    text = f"{c['time_iso']} ({c['time']:.3f}, {level} interval {c['low']:.3f}-{c['high']:.3f}"
+    return text + (")" if c.get("resolved", True) else f"; not resolved: {c.get('reason')})")
 
 
 def _fmt_year(v) -> str:

@@ -519,10 +519,9 @@ def render_report(store_path, out_dir, products_dir=None, settings: ReportSettin
         products.reversals = products.summary["reversals"]
         notes.append("reversals taken from summary.json")
     if products.reversals is None:
-        from pipeline.reversal import series_reversals
+        from pipeline.systematics import store_reversals
 
-        res = series_reversals(products.series, config.reversals, config.series.smoother)
-        products.reversals = {k: v.to_dict() for k, v in res.items()}
+        products.reversals = store_reversals(records, products.series, config)
         recomputed.append("reversals")
     if products.forecast is None and isinstance(products.summary, dict) and \
             isinstance(products.summary.get("forecast"), dict):

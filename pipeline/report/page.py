@@ -25,6 +25,20 @@ def _f(v, spec=".3f"):
     return format_number(v, spec)
 
 
+def _level_text(level) -> str:
+    """``"90%"`` from a level 0.9 (the reversal intervals' default when the product states none)."""
+    try:
+        return f"{100 * float(level):g}%"
+    except (TypeError, ValueError):
+        return "90%"
+
+
+def _interval_text(iv) -> str:
+    if not isinstance(iv, dict) or iv.get("low") is None or iv.get("high") is None:
+        return ""
+    return f"{_f(iv['low'])} \u2013 {_f(iv['high'])}"
+
+
 def reversal_tables(reversals: dict | None) -> str:
     """One table per series (north, south, dipole): every crossing with its interval, the final one marked."""
     if not reversals:
@@ -36,6 +50,7 @@ def reversal_tables(reversals: dict | None) -> str:
             parts.append(f"<h3>{pole}</h3>" + note_html("not available"))
             continue
         final = res.get("final") or {}
+        pct = _level_text(res.get("level"))
         rows, classes = [], []
         for i, c in enumerate(res.get("crossings") or [], start=1):
             is_final = bool(final) and c.get("time") == final.get("time")
@@ -43,14 +58,18 @@ def reversal_tables(reversals: dict | None) -> str:
             width = None if lo is None or hi is None else hi - lo
             sign = c.get("sign_after")
             rows.append([i, c.get("time_iso"), _f(c.get("time")), _f(lo), _f(hi), _f(width),
+                         _interval_text(c.get("noise_interval")) if c.get("resolved", True)
+                         else f"not resolved: {c.get('reason')}",
+                         _interval_text(c.get("systematic_interval")), _f(c.get("support"), ".2f"),
                          {1: "+ (outward)", -1: "\u2212 (inward)"}.get(sign, sign),
                          "final" if is_final else ""])
             classes.append("final" if is_final else "")
         title = {"dipole": "axial dipole (N \u2212 S)/2"}.get(pole, f"{pole} pole")
         parts.append(f"<h3>{title}</h3>")
         if rows:
-            parts.append(table_html(["#", "epoch", "time (yr)", "low (yr)", "high (yr)", "width (yr)",
-                                     "sign after", ""], rows, numeric={0, 2, 3, 4, 5}, row_classes=classes))
+            parts.append(table_html(["#", "epoch", "time (yr)", f"{pct} low (yr)", f"{pct} high (yr)", "width (yr)",
+                                     f"noise {pct} (yr)", f"systematic {pct} (yr)", "support", "sign after", ""],
+                                    rows, numeric={0, 2, 3, 4, 5, 8}, row_classes=classes))
         else:
             parts.append(note_html("no persistent sign change in the data"))
     bands = reversals.get("bands")
@@ -61,9 +80,11 @@ def reversal_tables(reversals: dict | None) -> str:
                 fin = (res or {}).get("final") or {}
                 rows.append([pole, boundary, len((res or {}).get("crossings") or []), fin.get("time_iso"),
                              _f(fin.get("time")), _f(fin.get("low")), _f(fin.get("high"))])
+        pct = _level_text(reversals.get("north", {}).get("level") if isinstance(reversals.get("north"), dict)
+                          else None)
         parts.append("<h3>Final reversal by cap boundary</h3>")
-        parts.append(table_html(["pole", "|lat| \u2265 (deg)", "crossings", "final epoch", "time (yr)", "low (yr)",
-                                 "high (yr)"], rows, numeric={1, 2, 4, 5, 6}))
+        parts.append(table_html(["pole", "|lat| \u2265 (deg)", "crossings", "final epoch", "time (yr)",
+                                 f"{pct} low (yr)", f"{pct} high (yr)"], rows, numeric={1, 2, 4, 5, 6}))
     return "\n".join(parts)
 
 
@@ -182,8 +203,10 @@ def truth_table(summary: dict | None, reversals: dict | None, forecast: dict | N
     if not isinstance(truth, dict):
         return ""
     rows = []
-    for pole in ("north", "south"):
+    for pole in ("north", "south", "dipole"):
         t = (truth.get("reversals") or {}).get(pole)
+        if t is None and pole == "dipole":
+            continue
         fin = ((reversals or {}).get(pole) or {}).get("final") or {}
         got = fin.get("time")
         diff = None if t is None or got is None else got - t
@@ -191,7 +214,8 @@ def truth_table(summary: dict | None, reversals: dict | None, forecast: dict | N
         if t is not None and fin.get("low") is not None and fin.get("high") is not None:
             inside = "yes" if fin["low"] <= t <= fin["high"] else "no"
         rows.append([f"final {pole} reversal (yr)", _f(t), _f(got),
-                     f"{_f(fin.get('low'))} \u2013 {_f(fin.get('high'))}", _f(diff), inside])
+                     f"{_level_text(fin.get('level'))}: {_f(fin.get('low'))} \u2013 {_f(fin.get('high'))}",
+                     _f(diff), inside])
     amp = truth.get("next_amplitude")
     f = forecast or {}
     i95 = f.get("interval_95") or [None, None]
@@ -283,8 +307,8 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
     for pole in ("north", "south"):
         fin = ((products.reversals or {}).get(pole) or {}).get("final")
         if fin:
-            headline.append(f"Final {pole} reversal {fin.get('time_iso')} ({_f(fin.get('low'))} \u2013 "
-                            f"{_f(fin.get('high'))}).")
+            headline.append(f"Final {pole} reversal {fin.get('time_iso')} ({_level_text(fin.get('level'))}: "
+                            f"{_f(fin.get('low'))} \u2013 {_f(fin.get('high'))}).")
     sections = []
     if fc.get("forecast_unavailable") and _number_of(fc.get("amplitude")) is None:
         headline.insert(0, f"No forecast: {fc['forecast_unavailable']}")
