@@ -3,13 +3,26 @@
 Radial-field assumption: ``Br = Blos / mu`` (DESIGN.md; e.g. Svalgaard,
 Duvall & Scherrer 1978, Solar Physics 58, 225).  A polar cap is
 ``|latitude| >= cap_latitude_deg``; pixels with ``mu < mu_min`` or missing
-data are left out.  Each cap's mean is area weighted, its flux is
-``sum(Br * area)`` and its coverage is the measured area over the whole cap's
-area ``2 pi R^2 (1 - sin cap_latitude)``.
+data are left out.  Each cap's mean estimates the area-weighted mean of Br
+over its measured part: within each latitude bin (``profile_bin_deg`` wide,
+aligned on the poles; the bin at the cap boundary holds only its part inside
+the cap) the pixels are weighted by their inverse noise variance
+``area * mu^2`` (the noise of ``Blos / mu`` grows as ``1 / mu``), and the
+bins are combined by their measured areas (:func:`stratified_cap_statistics`).
+Its flux is ``sum(Br * area)`` and its coverage is the measured area over the
+whole cap's area ``2 pi R^2 (1 - sin cap_latitude)``.
 
-The record also carries a latitude profile (area-weighted mean Br and area
-per latitude bin) for the latitude-time diagram and the B0 profile
-correction of later stages.
+The record also carries a latitude profile (noise-weighted mean Br, area and
+mean of ``1/mu`` per latitude bin) for the latitude-time diagram and the B0
+profile correction of later stages, and the magnetogram's zero-point offset
+estimated from the low-latitude disk (:mod:`pipeline.zero_offset`), made
+whatever ``[measure] zero_offset`` says; that setting only decides whether
+the stored means are corrected (``zero_offset_applied``), and
+:func:`pipeline.zero_offset.toggle_zero_offset` switches it afterwards.
+
+Version 2 (issue 11): noise-weighted cap and profile means, the zero-offset
+estimate and its optional correction, the means of ``1/mu`` and the Kish
+effective pixel numbers.
 
 Measurement-code version
 ------------------------
@@ -36,13 +49,15 @@ from pipeline.config import MeasureSettings
 from pipeline.projection import cap_area_m2, surface_points
 from pipeline.reader import Frame, FrameError, read_frame
 from pipeline.timeutil import iso_time
+from pipeline.zero_offset import estimate_zero_offset_gauss
 
 __all__ = ["CapStats", "FrameRecord", "JSON_KEYS", "MEASUREMENT_VERSION", "cap_statistics", "measure_frame",
-           "measure_file", "skipped_record", "error_record", "profile_edges_deg"]
+           "measure_file", "skipped_record", "error_record", "profile_edges_deg", "stratified_cap_statistics",
+           "kish_effective_number"]
 
 #: Version of the numbers the measurement code (reader, projection, measure) gives; an integer bumped by hand
 #: whenever a change to those modules changes a measured value or a skip decision (see the module docstring).
-MEASUREMENT_VERSION = 1
+MEASUREMENT_VERSION = 2
 
 #: The keys of ``polecast measure --format json``, in order.
 JSON_KEYS = (
@@ -65,6 +80,8 @@ class CapStats:
     pixels: int
     br_error_gauss: float | None
     area_m2: float = 0.0
+    inv_mu: float | None = None
+    effective_pixels: float | None = None
 
 
 def cap_statistics(br_gauss: np.ndarray, area_m2: np.ndarray, whole_cap_area_m2: float) -> CapStats:
@@ -102,6 +119,91 @@ def cap_statistics(br_gauss: np.ndarray, area_m2: np.ndarray, whole_cap_area_m2:
     else:
         se = None
     return CapStats(mean, flux, sw / whole_cap_area_m2, n, se, sw)
+
+
+def kish_effective_number(weights) -> float:
+    """Kish's effective number of observations ``(sum w)^2 / sum w^2`` of a weighted mean.
+
+    Kish (1965), Survey Sampling, Wiley, section 11.7 (from memory); equal
+    weights give the number of observations.  0 for no weight.
+    """
+    w = np.asarray(weights, dtype=np.float64)
+    ww = float((w * w).sum())
+    return float(w.sum()) ** 2 / ww if ww > 0 else 0.0
+
+
+def stratified_cap_statistics(br_gauss: np.ndarray, area_m2: np.ndarray, mu: np.ndarray, bin_index: np.ndarray,
+                              whole_cap_area_m2: float) -> CapStats:
+    """Noise-weighted within latitude bins, area-weighted across them: the cap mean of the measurement.
+
+    Parameters
+    ----------
+    br_gauss : ndarray
+        Radial field of the cap's measured pixels, gauss.
+    area_m2 : ndarray
+        Their areas on the sphere, m^2.
+    mu : ndarray
+        Their cosines of the viewing angle.
+    bin_index : ndarray of int
+        Their latitude bins (any integer labels).
+    whole_cap_area_m2 : float
+        Area of the whole cap, m^2.
+
+    Returns
+    -------
+    CapStats
+        ``br_gauss`` the mean, ``flux_mx`` the unweighted ``sum(Br area)``,
+        ``coverage``, ``pixels``, ``br_error_gauss`` (None with no more
+        pixels than bins), ``area_m2`` the measured area, ``inv_mu`` the mean
+        of ``1/mu`` under the same weights and ``effective_pixels`` Kish's
+        number.
+
+    Notes
+    -----
+    In bin ``b`` the pixels ``i`` get inverse-noise-variance weights
+    ``w_i = a_i mu_i^2`` (instrument noise ``sigma`` in Blos is ``sigma / mu``
+    in Br) and the bin mean is ``m_b = sum(w x) / sum(w)``.  The cap mean is
+    ``M = sum_b A_b m_b / sum_b A_b`` with ``A_b`` the bin's measured area,
+    so its estimand stays the area-weighted mean over the measured part of
+    the cap (weighting across latitudes by ``mu^2`` would tilt it toward the
+    lower latitudes, seen at higher mu).  ``M = sum_i W_i x_i`` with pixel
+    weights ``W_i = (A_b / A) w_i / W_b``, ``sum W_i = 1``.  The standard
+    error linearises each bin's ratio mean (Gatz & Smith 1995, Atmospheric
+    Environment 29, 1185, eq. 2) and adds the bins with their fixed weights
+    ``A_b / A`` (stratified sampling, e.g. Cochran 1977, Sampling
+    Techniques, 3rd ed., Wiley, eq. 5.6, from memory), with a pooled
+    small-sample factor ``n / (n - B)`` for ``B`` occupied bins (common
+    practice, no source)::
+
+        SE^2 = n / (n - B) * sum_i W_i^2 (x_i - m_b(i))^2
+
+    Pixels are treated as independent, so SE is a lower bound where the
+    field is spatially correlated.  The effective number of pixels is
+    ``(sum W)^2 / sum W^2`` (Kish 1965, Survey Sampling, Wiley).
+    """
+    n = int(br_gauss.size)
+    if n == 0:
+        return CapStats(None, None, 0.0, 0, None, 0.0, None, None)
+    x = br_gauss.astype(np.float64)
+    a = area_m2.astype(np.float64)
+    m = mu.astype(np.float64)
+    _, b = np.unique(np.asarray(bin_index), return_inverse=True)
+    nb = int(b.max()) + 1
+    w = a * m * m                                  # inverse noise variance of Br = Blos / mu, times area
+    a_b = np.bincount(b, weights=a, minlength=nb)
+    w_b = np.bincount(b, weights=w, minlength=nb)
+    m_b = np.bincount(b, weights=w * x, minlength=nb) / w_b
+    inv_b = np.bincount(b, weights=w / m, minlength=nb) / w_b
+    total = float(a_b.sum())
+    mean = float((a_b * m_b).sum() / total)
+    inv_mu = float((a_b * inv_b).sum() / total)
+    big_w = (a_b[b] / total) * w / w_b[b]          # each pixel's weight in the cap mean
+    if n > nb:                                     # Gatz & Smith 1995 eq. 2 per bin, bins added (stratified)
+        se = math.sqrt(n / (n - nb) * float((big_w * big_w * (x - m_b[b]) ** 2).sum()))
+    else:
+        se = None
+    flux = float((a * x).sum() * _M2_TO_CM2)
+    return CapStats(mean, flux, total / whole_cap_area_m2, n, se, total, inv_mu, kish_effective_number(big_w))
 
 
 def profile_edges_deg(settings: MeasureSettings) -> np.ndarray:
@@ -172,10 +274,23 @@ class FrameRecord:
     cap_latitude_deg: float | None = None
     mu_min: float | None = None
     notes: tuple = ()
-    # latitude profile: bin edges (deg), area-weighted mean Br (G, None if empty) and area (m^2)
+    # latitude profile: bin edges (deg), noise-weighted mean Br (G, None if empty) and area (m^2)
     profile_edges_deg: tuple = field(default_factory=tuple)
     profile_br_gauss: tuple = field(default_factory=tuple)
     profile_area_m2: tuple = field(default_factory=tuple)
+    # zero-point offset (measurement version 2; None in older records): the estimate (G, line of sight),
+    # its standard error, the pixels it used, and whether the stored cap and profile means are corrected
+    zero_offset_gauss: float | None = None
+    zero_offset_error_gauss: float | None = None
+    zero_offset_pixels: int | None = None
+    zero_offset_applied: bool | None = None
+    # means of 1/mu with the weights of each cap mean and profile bin (for pipeline.zero_offset.toggle_zero_offset)
+    north_inv_mu: float | None = None
+    south_inv_mu: float | None = None
+    profile_inv_mu: tuple = field(default_factory=tuple)
+    # Kish effective number of pixels of each cap mean, (sum W)^2 / sum W^2
+    north_effective_pixels: float | None = None
+    south_effective_pixels: float | None = None
 
     def to_json(self) -> dict:
         """The ``polecast measure`` JSON object: exactly :data:`JSON_KEYS`."""
@@ -221,20 +336,42 @@ def _carrington_rotation(t: np.datetime64) -> float:
         return float(carrington_rotation_number(Time(t.astype("datetime64[ms]").astype(str), scale="utc")))
 
 
+def _offset_estimate(frame: Frame) -> tuple:
+    """:func:`pipeline.zero_offset.estimate_zero_offset_gauss` on the frame's offset rows."""
+    hdr = frame.header
+    blos, lat, mu, rows = [], [], [], []
+    for block in frame.offset_blocks:
+        s = surface_points(hdr.geometry, hdr.observer, block.window, mu_floor=2.0, longitudes=False)
+        blos.append(block.data.ravel()); lat.append(s.latitude_deg.ravel()); mu.append(s.mu.ravel())
+        w = block.window
+        rows.append(np.repeat(np.arange(w.row0, w.row1), w.col1 - w.col0))
+    if not blos:
+        return math.nan, math.nan, 0
+    return estimate_zero_offset_gauss(np.concatenate(blos), np.concatenate(lat), np.concatenate(mu),
+                                      row_index=np.concatenate(rows))
+
+
+def _none_if_nan(v):
+    return None if v is None or not math.isfinite(v) else float(v)
+
+
 def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> FrameRecord:
-    """Measure both polar caps and the latitude profile of one frame.
+    """Measure both polar caps, the latitude profile and the zero-point offset of one frame.
 
     Parameters
     ----------
     frame : Frame
         As read by :func:`pipeline.reader.read_frame` (``region="caps"`` is
-        enough).
+        enough; its ``offset_blocks`` give the zero-offset estimate).
     settings : MeasureSettings, optional
 
     Returns
     -------
     FrameRecord
-        ``status="ok"``.
+        ``status="ok"``.  With ``settings.zero_offset == "weak-field-mean"``
+        and an estimate, the cap and profile means are of
+        ``(Blos - delta) / mu`` (``zero_offset_applied=True``); otherwise of
+        ``Blos / mu``.  The estimate is recorded either way.
     """
     settings = settings or MeasureSettings()
     hdr = frame.header
@@ -243,9 +380,10 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
     edges = profile_edges_deg(settings)
     nbins = edges.size - 1
     lookup, step = _bin_lookup(edges, settings.profile_bin_deg)
-    prof_w = np.zeros(nbins)
-    prof_wb = np.zeros(nbins)
-    north_b, north_a, south_b, south_a = [], [], [], []
+    n_uniform = lookup.size
+    # per uniform bin (width step from -90 deg): area, noise weight, weight x Br, weight / mu
+    u_a, u_w, u_wb, u_wi = (np.zeros(n_uniform) for _ in range(4))
+    caps = {"north": [], "south": []}
     lo = settings.read_latitude_deg
     for block in frame.blocks:
         s = surface_points(hdr.geometry, obs, block.window, mu_floor=settings.mu_min, longitudes=False)
@@ -254,24 +392,37 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
             good = (s.mu >= settings.mu_min) & (np.abs(s.latitude_deg) >= lo) & np.isfinite(block.data)
         lat = s.latitude_deg[good]
         area = s.area_m2[good]
-        br = block.data[good] / s.mu[good]          # radial-field assumption Br = Blos / mu
-        n_sel = lat >= cap
-        s_sel = lat <= -cap
-        north_b.append(br[n_sel]); north_a.append(area[n_sel])
-        south_b.append(br[s_sel]); south_a.append(area[s_sel])
-        idx = lookup[np.minimum(((lat + 90.0) / step).astype(np.intp), lookup.size - 1)]
-        inb = idx >= 0
-        prof_w += np.bincount(idx[inb], weights=area[inb], minlength=nbins)
-        prof_wb += np.bincount(idx[inb], weights=(area * br)[inb], minlength=nbins)
+        mu = s.mu[good]
+        br = block.data[good] / mu                  # radial-field assumption Br = Blos / mu
+        w = area * mu * mu                           # inverse noise variance of Br, times area
+        ub = np.minimum(((lat + 90.0) / step).astype(np.intp), n_uniform - 1)
+        u_a += np.bincount(ub, weights=area, minlength=n_uniform)
+        u_w += np.bincount(ub, weights=w, minlength=n_uniform)
+        u_wb += np.bincount(ub, weights=w * br, minlength=n_uniform)
+        u_wi += np.bincount(ub, weights=w / mu, minlength=n_uniform)
+        for pole, sel in (("north", lat >= cap), ("south", lat <= -cap)):
+            caps[pole].append((br[sel], area[sel], mu[sel], ub[sel]))
+    # profile bins: unions of uniform bins (the equatorial gap bin is left empty)
+    inb = lookup >= 0
+    prof_a = np.bincount(lookup[inb], weights=u_a[inb], minlength=nbins)
+    prof_w = np.bincount(lookup[inb], weights=u_w[inb], minlength=nbins)
+    prof_wb = np.bincount(lookup[inb], weights=u_wb[inb], minlength=nbins)
+    prof_wi = np.bincount(lookup[inb], weights=u_wi[inb], minlength=nbins)
     gap = _gap_bin(edges, settings)
     if gap is not None:
-        prof_w[gap] = prof_wb[gap] = 0.0
+        prof_a[gap] = prof_w[gap] = prof_wb[gap] = prof_wi[gap] = 0.0
     whole = cap_area_m2(obs.rsun_m, cap)
-    north = cap_statistics(np.concatenate(north_b), np.concatenate(north_a), whole)
-    south = cap_statistics(np.concatenate(south_b), np.concatenate(south_a), whole)
+    stats = {}
+    for pole, parts in caps.items():
+        br, area, mu, ub = (np.concatenate([p[j] for p in parts]) for j in range(4))
+        stats[pole] = stratified_cap_statistics(br, area, mu, ub, whole)
     with np.errstate(invalid="ignore", divide="ignore"):
-        prof_mean = np.where(prof_w > 0, prof_wb / np.where(prof_w > 0, prof_w, 1.0), np.nan)
-    return FrameRecord(
+        ok = prof_w > 0
+        prof_mean = np.where(ok, prof_wb / np.where(ok, prof_w, 1.0), np.nan)
+        prof_inv = np.where(ok, prof_wi / np.where(ok, prof_w, 1.0), np.nan)
+    offset, offset_error, offset_n = _offset_estimate(frame)
+    north, south = stats["north"], stats["south"]
+    record = FrameRecord(
         file=hdr.path, status="ok", reason=None, time=iso_time(hdr.time), b0_deg=obs.b0_deg,
         north_br_gauss=north.br_gauss, south_br_gauss=south.br_gauss,
         north_flux_mx=north.flux_mx, south_flux_mx=south.flux_mx,
@@ -282,9 +433,19 @@ def measure_frame(frame: Frame, settings: MeasureSettings | None = None) -> Fram
         carrington_rotation=_carrington_rotation(hdr.time), observer_source=obs.source,
         instrument=hdr.instrument, cap_latitude_deg=cap, mu_min=settings.mu_min, notes=tuple(hdr.notes),
         profile_edges_deg=tuple(float(e) for e in edges),
-        profile_br_gauss=tuple(None if not np.isfinite(v) else float(v) for v in prof_mean),
-        profile_area_m2=tuple(float(v) for v in prof_w),
+        profile_br_gauss=tuple(_none_if_nan(v) for v in prof_mean),
+        profile_area_m2=tuple(float(v) for v in prof_a),
+        zero_offset_gauss=_none_if_nan(offset), zero_offset_error_gauss=_none_if_nan(offset_error),
+        zero_offset_pixels=int(offset_n), zero_offset_applied=False,
+        north_inv_mu=north.inv_mu, south_inv_mu=south.inv_mu,
+        profile_inv_mu=tuple(_none_if_nan(v) for v in prof_inv),
+        north_effective_pixels=north.effective_pixels, south_effective_pixels=south.effective_pixels,
     )
+    if settings.zero_offset != "none":
+        from pipeline.zero_offset import toggle_zero_offset
+
+        record = toggle_zero_offset(record, True)
+    return record
 
 
 def measure_file(path: str | os.PathLike, settings: MeasureSettings | None = None) -> FrameRecord:

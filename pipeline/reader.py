@@ -131,11 +131,17 @@ class Frame:
     """One magnetogram, as far as it was read.
 
     ``blocks`` cover the windows that were read; :attr:`full` builds the
-    whole image (NaN where not read) for interactive use.
+    whole image (NaN where not read) for interactive use.  ``offset_blocks``
+    are the sparse one-row windows of the low-latitude disk that the
+    zero-offset estimate uses (:func:`pipeline.zero_offset.plan_offset_windows`):
+    the same pixels whatever the region read, sliced from ``blocks`` where
+    those hold them; they are not part of ``blocks`` (a pixel in both is
+    measured once).
     """
 
     header: FrameHeader
     blocks: tuple = field(default_factory=tuple)
+    offset_blocks: tuple = field(default_factory=tuple)
 
     @property
     def time(self):
@@ -700,6 +706,8 @@ def read_frame(path: str | os.PathLike, settings: MeasureSettings | None = None,
     region : {"full", "caps"}
         ``"full"`` reads the whole image; ``"caps"`` reads only the rows
         (and columns) that can hold ``|latitude| >= settings.read_latitude_deg``.
+        Either way the sparse rows of the zero-offset estimate are in
+        ``Frame.offset_blocks`` (read only where no block already holds them).
 
     Returns
     -------
@@ -722,20 +730,46 @@ def read_frame(path: str | os.PathLike, settings: MeasureSettings | None = None,
         else:
             windows = plan_windows(header.geometry, header.observer, settings.read_latitude_deg)
         squeeze = int(hdu.header.get("NAXIS", 2)) - 2
-        blocks = []
-        for group in _contiguous(windows):
-            r0, r1 = group[0].row0, group[-1].row1
-            c0, c1 = min(w.col0 for w in group), max(w.col1 for w in group)
-            try:
-                rows = _read_rows(hdu, r0, r1, c0, c1, squeeze)
-            except _decode_errors() as exc:
-                raise FrameError(f"cannot decode image data ({_one_line(exc)})") from None
-            for w in group:
-                part = rows[w.row0 - r0:w.row1 - r0, w.col0 - c0:w.col1 - c0]
-                blocks.append(Block(w, (part * header.gauss_per_unit).astype(np.float32)))
+        blocks = _read_windows(hdu, windows, squeeze, header.gauss_per_unit)
+        offset_blocks = _offset_blocks(hdu, header, blocks, squeeze)
     if not blocks or all(not np.isfinite(b.data).any() for b in blocks):
         raise FrameError("no valid pixels: every pixel is missing (NaN or BLANK)")
-    return Frame(header, tuple(blocks))
+    return Frame(header, tuple(blocks), tuple(offset_blocks))
+
+
+def _read_windows(hdu, windows, squeeze: int, gauss_per_unit: float) -> list:
+    """Blocks of ``windows`` (ordered by row), one section read per run of contiguous rows."""
+    blocks = []
+    for group in _contiguous(windows):
+        r0, r1 = group[0].row0, group[-1].row1
+        c0, c1 = min(w.col0 for w in group), max(w.col1 for w in group)
+        try:
+            rows = _read_rows(hdu, r0, r1, c0, c1, squeeze)
+        except _decode_errors() as exc:
+            raise FrameError(f"cannot decode image data ({_one_line(exc)})") from None
+        for w in group:
+            part = rows[w.row0 - r0:w.row1 - r0, w.col0 - c0:w.col1 - c0]
+            blocks.append(Block(w, (part * gauss_per_unit).astype(np.float32)))
+    return blocks
+
+
+def _offset_blocks(hdu, header: FrameHeader, blocks: list, squeeze: int) -> list:
+    """The zero-offset rows (:func:`pipeline.zero_offset.plan_offset_windows`): sliced from ``blocks``
+    where one holds the whole window, read from the file otherwise."""
+    from pipeline.zero_offset import plan_offset_windows
+
+    out, missing = {}, []
+    for w in plan_offset_windows(header.geometry, header.observer):
+        holder = next((b for b in blocks if b.window.row0 <= w.row0 and w.row1 <= b.window.row1
+                       and b.window.col0 <= w.col0 and w.col1 <= b.window.col1), None)
+        if holder is None:
+            missing.append(w)
+            continue
+        h = holder.window
+        out[w] = Block(w, holder.data[w.row0 - h.row0:w.row1 - h.row0, w.col0 - h.col0:w.col1 - h.col0])
+    for b in _read_windows(hdu, missing, squeeze, header.gauss_per_unit):
+        out[b.window] = b
+    return [out[w] for w in sorted(out, key=lambda w: w.row0)]
 
 
 def _contiguous(windows):

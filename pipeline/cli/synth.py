@@ -28,6 +28,10 @@ def add_parser(sub) -> None:
     p.add_argument("--noise", type=float, default=2.0, metavar="GAUSS", help="instrument noise per pixel (default 2)")
     p.add_argument("--network", type=float, default=3.0, metavar="GAUSS", help="network field RMS (default 3)")
     p.add_argument("--no-regions", action="store_true", help="leave out the active regions")
+    p.add_argument("--zero-offset", type=float, default=0.0, metavar="GAUSS",
+                   help="zero-point offset added to every on-disk line-of-sight pixel before noise (default 0)")
+    p.add_argument("--zero-offset-drift", type=float, default=0.0, metavar="GAUSS_PER_YEAR",
+                   help="linear drift of the zero-point offset from --start, gauss per year (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress messages")
     p.set_defaults(func=run)
 
@@ -38,7 +42,9 @@ def settings_from_args(args):
 
     return ArchiveSettings(start=args.start, end=args.end, cadence_days=args.cadence, size=args.size,
                            seed=args.seed, rotation_deg=args.rotation, offset_pixels=tuple(args.offset),
-                           noise_gauss=args.noise, network_gauss=args.network, regions=not args.no_regions)
+                           noise_gauss=args.noise, network_gauss=args.network, regions=not args.no_regions,
+                           zero_offset_gauss=args.zero_offset,
+                           zero_offset_drift_gauss_per_year=args.zero_offset_drift)
 
 
 def run(args) -> int:

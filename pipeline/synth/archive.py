@@ -51,7 +51,7 @@ from pipeline.synth.truth import (TRUTH_SCALE, calibration_rows, cycle_landmarks
                                   phase_precursors, precursor_gauss, sign_changes_yr, visible_cap_means_gauss)
 
 __all__ = ["ArchiveSettings", "ArchiveResult", "frame_times", "frame_name", "render_frame", "write_frame_file",
-           "truth_summary", "calibration_csv_text", "truth_json_text", "CALIBRATION_COLUMNS", "write_archive",
+           "truth_summary", "calibration_csv_text", "zero_offset_at_gauss", "truth_json_text", "CALIBRATION_COLUMNS", "write_archive",
            "SPAN_LIMITS_YR"]
 
 #: columns of the archive's calibration.csv (the order ``pipeline.regression.format_calibration_csv`` writes)
@@ -88,6 +88,13 @@ class ArchiveSettings:
         Draw active regions.
     bscale_gauss : float
         Quantisation step of the stored integers, gauss.
+    zero_offset_gauss : float
+        Zero-point offset of the magnetograph: added to every on-disk Blos
+        pixel before the noise and the quantisation, gauss (line of sight).
+    zero_offset_drift_gauss_per_year : float
+        Linear drift of that offset from ``start``: the offset of a frame at
+        time ``t`` is ``zero_offset_gauss + drift * (t - start)`` (decimal
+        years), gauss per year.
     """
 
     start: str = "2031-01-01"
@@ -101,6 +108,8 @@ class ArchiveSettings:
     network_gauss: float = 3.0
     regions: bool = True
     bscale_gauss: float = 0.5
+    zero_offset_gauss: float = 0.0
+    zero_offset_drift_gauss_per_year: float = 0.0
 
     def __post_init__(self):
         from pipeline.config import check_number
@@ -128,6 +137,9 @@ class ArchiveSettings:
         check_number("noise_gauss", self.noise_gauss, lo=0.0)
         check_number("network_gauss", self.network_gauss, lo=0.0)
         check_number("bscale_gauss", self.bscale_gauss, lo=0.0, lo_open=True)
+        check_number("zero_offset_gauss", self.zero_offset_gauss, lo=-1000.0, hi=1000.0)
+        check_number("zero_offset_drift_gauss_per_year", self.zero_offset_drift_gauss_per_year, lo=-1000.0,
+                     hi=1000.0)
 
 
 @dataclass(frozen=True)
@@ -176,6 +188,16 @@ def _render_los(br, geometry, observer) -> np.ndarray:
     return out
 
 
+def zero_offset_at_gauss(settings: ArchiveSettings, t) -> float:
+    """The magnetograph's zero-point offset at time ``t``: constant plus linear drift from ``start`` (gauss)."""
+    if settings.zero_offset_drift_gauss_per_year == 0.0:
+        return float(settings.zero_offset_gauss)
+    from pipeline.timeutil import decimal_year
+
+    years = decimal_year(np.datetime64(t, "ns")) - decimal_year(np.datetime64(settings.start))
+    return float(settings.zero_offset_gauss + settings.zero_offset_drift_gauss_per_year * years)
+
+
 def render_frame(history: StarHistory, t, observer: Observer, settings: ArchiveSettings):
     """Line-of-sight image (gauss, NaN off disk), its geometry and the visible-cap truth.
 
@@ -194,6 +216,9 @@ def render_frame(history: StarHistory, t, observer: Observer, settings: ArchiveS
     br = surface_field(history, t_days, opts)
     blos = _render_los(br, geometry, observer)
     on = np.isfinite(blos)
+    offset = zero_offset_at_gauss(settings, t)
+    if offset != 0.0:  # skipped at 0 so that offset-free frames keep their bytes
+        blos[on] += offset
     blos[on] += instrument_noise(int(on.sum()), settings.noise_gauss, _frame_rng(history.seed, t),
                                  "gaussian" if settings.noise_gauss > 0 else "none")
     visible = visible_cap_means_gauss(br.profile_lat_deg, br.profile_br_gauss, observer.b0_deg,
