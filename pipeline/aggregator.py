@@ -33,6 +33,7 @@ rotation-to-rotation noise by ~4.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from dataclasses import dataclass
@@ -145,16 +146,23 @@ def rotation_mid_time(rotations) -> np.ndarray:
     ``carrington_rotation_time`` (Carrington longitude of the sub-Earth point
     by the standard ephemeris).
     """
-    from sunpy.coordinates.sun import carrington_rotation_time
-
     r = np.atleast_1d(np.asarray(rotations, dtype=float))
     if r.size == 0:
         return np.array([], dtype="datetime64[ns]")
+    return np.array(_mid_times(tuple(float(v) for v in r)), dtype="datetime64[ns]")
+
+
+@functools.lru_cache(maxsize=64)
+def _mid_times(rotations: tuple) -> tuple:
+    """:func:`rotation_mid_time` of a tuple of rotations, cached: the ensemble of analysis choices
+    (pipeline.systematics) builds many series over the same rotations, and the ephemeris is the slow part."""
+    from sunpy.coordinates.sun import carrington_rotation_time
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        t = carrington_rotation_time(r + 0.5)
+        t = carrington_rotation_time(np.asarray(rotations) + 0.5)
         iso = np.atleast_1d(t.utc.isot)
-    return to_datetime64(iso)
+    return tuple(to_datetime64(iso))
 
 
 def _good_records(records):
