@@ -95,3 +95,18 @@ def test_systematics_off_leaves_only_the_noise(records):
     assert f["ensemble"] == {}
     assert f["systematic_interval"]["low"] == f["systematic_interval"]["high"] == f["time"]
     assert ReversalSettings().systematics is True
+
+
+def test_season_dipole_exists_and_its_interval_holds_the_truth(records):
+    # issue 11: the season method's per-rotation dipole (nearest seasons, pipeline.b0) must exist and reverse
+    # within its interval of the truth.  Truth: (N - S)/2 of the two equal tanh reversals crosses zero midway
+    # between them by symmetry, 2034.95 (the same argument as tests/test_cli_reversals.py).
+    from pipeline.reversal import series_reversals
+
+    ds = polar_series(records, SeriesSettings(b0_method="season"))
+    assert np.isfinite(ds["dipole_br_rotation_gauss"].values).sum() >= 20
+    members, skipped = series_members(records, SeriesSettings(b0_method="season"))
+    res = series_reversals(ds, ReversalSettings(n_bootstrap=150), None, members, skipped)
+    f = res["dipole"].final
+    assert f is not None and f.low <= 0.5 * (T_NORTH + T_SOUTH) <= f.high, f
+    assert "b0_method=fill" in dict(f.members)

@@ -223,9 +223,10 @@ def polar_series_figure(series, settings, *, reversals: dict | None = None,
     bottom.set_xlabel("time (decimal year, UTC)")
     smoothing = "" if series is None else str(series.attrs.get("smoothing_description", ""))
     b0 = "" if series is None else str(series.attrs.get("b0_method", ""))
+    level = ((reversals or {}).get("north") or {}).get("level", 0.9)
     top.set_title(f"Polar fields per Carrington rotation (B0 method: {b0 or 'n/a'}; smoothing: "
-                  f"{smoothing or 'n/a'})\nshaded: reversal intervals; hatched: precursor window",
-                  fontsize="small")
+                  f"{smoothing or 'n/a'})\nshaded: {100 * float(level):g}% reversal intervals (noise and analysis "
+                  f"choices); hatched: precursor window", fontsize="small")
     return fig
 
 
