@@ -251,3 +251,49 @@ def test_cli_csv_and_usage_errors(tmp_path, capsys):
     conf.write_text("[measure]\ncap_latitude = 60\n")
     code, _, err = _run(capsys, good, "--config", conf)
     assert code == 2 and "unknown key" in err
+
+
+# --- noise-weighted cap means (measurement version 2, issue 11) ----------------------------------------------
+
+def _band_mean_sin8(l1_deg, l2_deg, b_gauss):
+    """Exact area mean of b sin^8(lat) over the band l1..l2 (0 <= l1 < l2 <= 90) of a sphere:
+    int sin^8 cos dl / int cos dl = (sin^9 l2 - sin^9 l1) / (9 (sin l2 - sin l1)) (elementary integral)."""
+    s1, s2 = np.sin(np.deg2rad(l1_deg)), np.sin(np.deg2rad(l2_deg))
+    return b_gauss * (s2 ** 9 - s1 ** 9) / (9.0 * (s2 - s1))
+
+
+@pytest.mark.parametrize("b0_deg", [-7.25, 0.0, 7.25])
+def test_sin8_cap_mean_is_the_sphere_area_mean_over_the_measured_bins(tmp_path, b0_deg):
+    """Analytic, on a frame rendered by sunpy's frames without noise: Br = 10 sin^8(lat) G (the shape of
+    Svalgaard, Duvall & Scherrer 1978).  The noise weights only act within a 1-deg bin, so the cap mean must be
+    the sphere-area mean of the field over each measured bin (exact band integral, _band_mean_sin8) combined
+    with the bins' measured areas (profile_area_m2).  1 %: pixel centres sample a bin unevenly at 128 px
+    (measured at most 0.74 %); weighting by mu^2 across latitudes instead would tilt it toward the low
+    latitudes by several per cent."""
+    br = lambda lat: 10.0 * np.sin(np.deg2rad(lat)) ** 8  # noqa: E731
+    path, _ = write_sunpy_frame(tmp_path / "f.fits", br, observer=make_observer(b0_deg=b0_deg), size=128)
+    rec = measure_file(path)
+    edges, area = np.array(rec.profile_edges_deg), np.array(rec.profile_area_m2)
+    lo, hi = np.minimum(np.abs(edges[:-1]), np.abs(edges[1:])), np.maximum(np.abs(edges[:-1]), np.abs(edges[1:]))
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    for pole, sign in (("north", 1.0), ("south", -1.0)):
+        sel = (sign * centres > 60.0) & (area > 0)
+        assert sel.sum() >= 5  # occupied 1-deg bins (at 128 px some near the pole hold no pixel centre)
+        expected = float((area[sel] * _band_mean_sin8(lo[sel], hi[sel], 10.0)).sum() / area[sel].sum())
+        assert getattr(rec, f"{pole}_br_gauss") == pytest.approx(expected, rel=1e-2)
+
+
+def test_cap_boundary_inside_a_bin_keeps_only_the_cap_part(tmp_path):
+    """A cap boundary at 62.5 deg falls inside the 62-63 deg bin: the cap mean must use only pixels with
+    |lat| >= 62.5.  With 12 / -6 G at and above 62.5 deg and 0.5 G below, the means are the cap values to 1e-4
+    (quantisation); one pixel of the band below would move them by about 0.1 G.  And a latitude-dependent
+    field matches the visible-cap quadrature (_cap_quadrature, 1 % as above)."""
+    path, _ = write_sunpy_frame(tmp_path / "f.fits", _uniform(12.0, -6.0, cap_deg=62.5), size=128)
+    rec = measure_file(path, MeasureSettings(cap_latitude_deg=62.5))
+    assert rec.north_br_gauss == pytest.approx(12.0, rel=1e-4)
+    assert rec.south_br_gauss == pytest.approx(-6.0, rel=1e-4)
+    br = lambda lat: 10.0 * np.sin(np.deg2rad(lat))  # noqa: E731
+    path, _ = write_sunpy_frame(tmp_path / "g.fits", br, observer=make_observer(b0_deg=4.0), size=128)
+    rec = measure_file(path, MeasureSettings(cap_latitude_deg=62.5))
+    assert rec.north_br_gauss == pytest.approx(_cap_quadrature(4.0, 62.5, 0.1, br)[1], rel=1e-2)
+    assert rec.south_br_gauss == pytest.approx(-_cap_quadrature(-4.0, 62.5, 0.1, br)[1], rel=1e-2)
