@@ -136,14 +136,16 @@ def band_inputs(records, series_settings):
     skipped : dict
         ``{name: reason}``.
     """
-    from pipeline.aggregator import band_cap_fill_errors, band_cap_means, filled_diagram, latitude_time_diagram
+    from pipeline.aggregator import (band_cap_fill_errors, band_cap_means, filled_diagram, filled_diagram_error,
+                                     latitude_time_diagram)
 
     def means_of(recs):
         diagram = latitude_time_diagram(recs, series_settings)
         if series_settings.b0_method != "fill":
             return band_cap_means(diagram), None
-        filled = filled_diagram(diagram, series_settings.fill_max_gap_years)
-        return band_cap_means(filled), band_cap_fill_errors(filled)
+        gap = series_settings.fill_max_gap_years
+        return (band_cap_means(filled_diagram(diagram, gap)),
+                band_cap_fill_errors(filled_diagram_error(diagram, gap)))
 
     means, errors = means_of(records)
     members, skipped = {}, {}

@@ -110,3 +110,18 @@ def test_season_dipole_exists_and_its_interval_holds_the_truth(records):
     f = res["dipole"].final
     assert f is not None and f.low <= 0.5 * (T_NORTH + T_SOUTH) <= f.high, f
     assert "b0_method=fill" in dict(f.members)
+
+
+def test_band_fill_errors_are_errors_of_the_band_means(records):
+    # the band means' correlated errors must be one-sigma fill errors (>= 0) and, for the band at the cap
+    # boundary, the same as the polar series' own fill errors (same cap, same fill: pipeline.aggregator)
+    from pipeline.systematics import band_inputs
+
+    means, errors, _, _ = band_inputs(records, SeriesSettings())
+    e60 = errors["north"][60.0].values
+    assert np.nanmin(e60) >= 0.0
+    ds = polar_series(records, SeriesSettings())
+    se = ds["north_br_rotation_fill_error_gauss"].values
+    ok = np.isfinite(e60) & np.isfinite(se) & (se > 0)
+    assert ok.sum() >= 5
+    assert np.median(e60[ok] / se[ok]) == pytest.approx(1.0, rel=0.5)

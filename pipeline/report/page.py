@@ -324,7 +324,8 @@ def assemble_page(*, settings, store_path: str, products_dir: str | None, produc
     sections.append(("series", "Polar-field series and reversals",
                      figure_html(figures["series"], "North and south polar-cap mean Br and the axial dipole "
                                  "(N \u2212 S)/2 per Carrington rotation with one-sigma error bars and the smoothed "
-                                 "curves; shaded spans are the reversal intervals, heavy lines the final reversals, "
+                                 "curves; shaded spans are the 90% reversal intervals (noise and the ensemble of "
+                                 "analysis choices), heavy lines the final reversals, "
                                  "dashed/dash-dot lines the cycle minima/maxima, the hatched span the window the "
                                  "precursor was taken in.", "polar-field series")
                      + reversal_tables(products.reversals)))
