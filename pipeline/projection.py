@@ -37,6 +37,7 @@ __all__ = [
     "ray_directions",
     "surface_points",
     "plan_windows",
+    "grow_mask",
     "cap_area_m2",
     "visible_area_m2",
 ]
@@ -362,6 +363,17 @@ def _clamped_latitude_deg(ux, uy, uz, observer):
     return np.rad2deg(np.arcsin(np.clip(z, -1, 1))), sin_rho, r / big_d
 
 
+def grow_mask(mask: np.ndarray) -> np.ndarray:
+    """A boolean 2-D mask grown by one cell into its 8 neighbours (a margin for coarse-grid planning)."""
+    grown = mask.copy()
+    grown[1:, :] |= mask[:-1, :]
+    grown[:-1, :] |= mask[1:, :]
+    out = grown.copy()
+    out[:, 1:] |= grown[:, :-1]
+    out[:, :-1] |= grown[:, 1:]
+    return out
+
+
 def plan_windows(geometry: ImageGeometry, observer: Observer, min_abs_latitude_deg: float,
                  coarse_pixels: int | None = None) -> list[Window]:
     """Windows that together hold every on-disk pixel with |latitude| >= a limit.
@@ -397,12 +409,7 @@ def plan_windows(geometry: ImageGeometry, observer: Observer, min_abs_latitude_d
     cell_rad = np.deg2rad(np.sqrt(abs(np.linalg.det(cd)))) * step
     near = sin_rho <= sin_limb + 2.0 * cell_rad
     flagged = near & (np.abs(lat) >= min_abs_latitude_deg)
-    grown = flagged.copy()
-    grown[1:, :] |= flagged[:-1, :]
-    grown[:-1, :] |= flagged[1:, :]
-    g2 = grown.copy()
-    g2[:, 1:] |= grown[:, :-1]
-    g2[:, :-1] |= grown[:, 1:]
+    g2 = grow_mask(flagged)
     windows = []
     for k in np.flatnonzero(g2.any(axis=1)):
         cols = np.flatnonzero(g2[k])

@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING, Iterable
 
 import numpy as np
 
-from pipeline.projection import ImageGeometry, Observer, Window, rays_at
+from pipeline.projection import ImageGeometry, Observer, Window, grow_mask, rays_at
 
 if TYPE_CHECKING:  # pragma: no cover
     from pipeline.measure import FrameRecord
@@ -232,12 +232,7 @@ def plan_offset_windows(geometry: ImageGeometry, observer: Observer, *,
     if not flagged.any():
         return []
     zone_pixels = float(flagged.sum()) * step * step
-    grown = flagged.copy()
-    grown[1:, :] |= flagged[:-1, :]
-    grown[:-1, :] |= flagged[1:, :]
-    g2 = grown.copy()
-    g2[:, 1:] |= grown[:, :-1]
-    g2[:, :-1] |= grown[:, 1:]
+    g2 = grow_mask(flagged)
     k = max(1, int(np.ceil(zone_pixels / max(int(target_pixels), 1))))
     coarse_rows = np.flatnonzero(flagged.any(axis=1))
     r_first = int(coarse_rows[0]) * step

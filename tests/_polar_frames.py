@@ -58,3 +58,14 @@ def render_and_measure(tmp_path, years, br_of_lat_time, *, size=112, noise_gauss
     """:func:`render_frames`, then :func:`pipeline.measure.measure_file` of each; the records."""
     paths = render_frames(tmp_path, years, br_of_lat_time, size=size, noise_gauss=noise_gauss, seed=seed)
     return [measure_file(p, settings) for p in paths]
+
+
+def reversing_sin8_field(t_north: float, t_south: float, tau_years: float, amplitude_gauss: float = 10.0):
+    """``Br(lat, year) = B(t) sin^8|lat|`` per hemisphere (Svalgaard, Duvall & Scherrer 1978 profile), B
+    reversing as ``tanh((year - t_pole) / tau)``: north from - to +, south from + to -."""
+    def field(lat, year):
+        s8 = np.sin(np.radians(np.abs(lat))) ** 8
+        north = amplitude_gauss * np.tanh((year - t_north) / tau_years)
+        south = -amplitude_gauss * np.tanh((year - t_south) / tau_years)
+        return np.where(lat >= 0, north, south) * s8
+    return field

@@ -16,19 +16,12 @@ import xarray as xr
 
 from pipeline.cli import main
 from pipeline.smoothing import rotations_to_years
-from tests._polar_frames import render_frames
+from tests._polar_frames import render_frames, reversing_sin8_field
 
 ROT_YR = rotations_to_years(1.0)
 T_NORTH, T_SOUTH = 2034.70, 2035.20  # true reversal epochs (decimal years); each falls in the season its pole faces the Earth
 TAU_YR = 0.6
-
-
-def _field(lat, year):
-    # Br = B(t) sin^8|lat| per hemisphere (Svalgaard, Duvall & Scherrer 1978 profile), B reversing as tanh
-    s8 = np.sin(np.radians(np.abs(lat))) ** 8
-    north = 10.0 * np.tanh((year - T_NORTH) / TAU_YR)
-    south = -10.0 * np.tanh((year - T_SOUTH) / TAU_YR)
-    return np.where(lat >= 0, north, south) * s8
+_field = reversing_sin8_field(T_NORTH, T_SOUTH, TAU_YR)
 
 
 @pytest.fixture(scope="module")

@@ -18,17 +18,11 @@ from pipeline.config import load_config
 from pipeline.measure import measure_file
 from pipeline.reversal import ReversalSettings
 from pipeline.systematics import series_members, store_reversals
-from tests._polar_frames import render_frames
+from tests._polar_frames import render_frames, reversing_sin8_field
 
 T_NORTH, T_SOUTH = 2034.70, 2035.20   # true epochs of the rendered field (decimal years)
 TAU_YR = 0.6
-
-
-def _field(lat, year):
-    s8 = np.sin(np.radians(np.abs(lat))) ** 8
-    north = 10.0 * np.tanh((year - T_NORTH) / TAU_YR)
-    south = -10.0 * np.tanh((year - T_SOUTH) / TAU_YR)
-    return np.where(lat >= 0, north, south) * s8
+_field = reversing_sin8_field(T_NORTH, T_SOUTH, TAU_YR)
 
 
 @pytest.fixture(scope="module")
