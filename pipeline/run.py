@@ -526,7 +526,7 @@ def _run_locked(config, truth: dict | None, months, table, notes: list, *, progr
     write_netcdf(diagram, out / "latitude_time.nc")
 
     # 3. reversals (poles, dipole, latitude bands)
-    reversals = store_reversals(records, series, config)   # noise bootstrap and the systematic ensemble
+    reversals = store_reversals(records, series, config, diagram)   # noise bootstrap and the systematic ensemble
     write_json(out / "reversals.json", reversals)
 
     # 4. cycle landmarks (all the sunspot months)

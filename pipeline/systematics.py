@@ -122,8 +122,17 @@ def series_members(records, series_settings):
     return members, skipped
 
 
-def band_inputs(records, series_settings):
+def band_inputs(records, series_settings, diagram=None, members: bool = True):
     """Band cap means, their fill errors, and the zero-offset member's band means.
+
+    Parameters
+    ----------
+    records : list of pipeline.measure.FrameRecord
+    series_settings : pipeline.aggregator.SeriesSettings
+    diagram : xarray.DataArray, optional
+        The records' :func:`pipeline.aggregator.latitude_time_diagram`, when the caller has it already.
+    members : bool
+        Build the zero-offset member (False: the ensemble is off).
 
     Returns
     -------
@@ -139,28 +148,31 @@ def band_inputs(records, series_settings):
     from pipeline.aggregator import (band_cap_fill_errors, band_cap_means, filled_diagram, filled_diagram_error,
                                      latitude_time_diagram)
 
-    def means_of(recs):
-        diagram = latitude_time_diagram(recs, series_settings)
+    def means_of(diag):
         if series_settings.b0_method != "fill":
-            return band_cap_means(diagram), None
+            return band_cap_means(diag), None
         gap = series_settings.fill_max_gap_years
-        return (band_cap_means(filled_diagram(diagram, gap)),
-                band_cap_fill_errors(filled_diagram_error(diagram, gap)))
+        return (band_cap_means(filled_diagram(diag, gap)),
+                band_cap_fill_errors(filled_diagram_error(diag, gap)))
 
-    means, errors = means_of(records)
-    members, skipped = {}, {}
+    if diagram is None:
+        diagram = latitude_time_diagram(records, series_settings)
+    means, errors = means_of(diagram)
+    band_members, skipped = {}, {}
+    if not members:
+        return means, errors, band_members, skipped
     toggled, name, why = _toggled(records)
     if toggled is None:
         skipped[name] = why
     else:
         try:
-            members[name] = means_of(toggled)[0]
+            band_members[name] = means_of(latitude_time_diagram(toggled, series_settings))[0]
         except (ConfigError, MixedRecordsError, ValueError) as exc:
             skipped[name] = _one_line(exc)
-    return means, errors, members, skipped
+    return means, errors, band_members, skipped
 
 
-def store_reversals(records, series, config) -> dict:
+def store_reversals(records, series, config, diagram=None) -> dict:
     """The reversal document of a store's records: poles, dipole and bands, each with the full ensemble.
 
     Parameters
@@ -171,6 +183,8 @@ def store_reversals(records, series, config) -> dict:
         Their PolarSeries under ``config.series`` (:func:`pipeline.aggregator.polar_series`).
     config : pipeline.config.Config
         Uses ``series`` and ``reversals``.
+    diagram : xarray.DataArray, optional
+        Their latitude-time diagram, when the caller has made it (not made twice).
 
     Returns
     -------
@@ -184,9 +198,7 @@ def store_reversals(records, series, config) -> dict:
     rs = config.reversals
     members, skipped = (series_members(records, config.series) if rs.systematics else ({}, {}))
     out = {k: v.to_dict() for k, v in series_reversals(series, rs, smoother, members, skipped).items()}
-    means, errors, band_members, band_skipped = band_inputs(records, config.series)
-    if not rs.systematics:
-        band_members, band_skipped = {}, {}
+    means, errors, band_members, band_skipped = band_inputs(records, config.series, diagram, rs.systematics)
     bands = band_reversals(means, rs, smoother, band_members, errors, band_skipped)
     out["bands"] = {pole: {b: r.to_dict() for b, r in d.items()} for pole, d in bands.items()}
     return out
